@@ -1,0 +1,119 @@
+"""Settings: built-in defaults, then a TOML file, then ``OCCFUSE_*`` environment variables.
+
+Later sources win. Every key below can be set as ``OCCFUSE_<KEY>`` in the environment or as a lower-case key
+in the TOML file named by ``OCCFUSE_CONFIG`` (or ``occfuse --config FILE``). Values are checked here, at
+start-up, so a typo fails loudly with the setting's name and where it came from instead of mid-epoch.
+
+The fusion keys (``RULE``, ``K``, ``TARGET_PF``, ...) only seed the fusion settings of a *new* database;
+afterwards the stored settings rule and change through ``PUT /api/v1/fusion`` (so every worker sees the same).
+"""
+
+from __future__ import annotations
+
+import os
+import tomllib
+from pathlib import Path
+from typing import Any, Mapping
+
+from .errors import ConfigError
+
+__all__ = ["DEFAULTS", "FUSION_KEYS", "load_settings"]
+
+DEFAULTS: dict[str, Any] = {
+    # storage and access
+    "DATABASE_URL": "sqlite:///occfuse.db",
+    "ADMIN_TOKEN": None,  # admin routes are refused until one is set
+    "READ_TOKEN": None,  # when set, reads need it (or the admin token) too
+    "SQLITE_SYNCHRONOUS": "NORMAL",  # FULL survives power loss, NORMAL survives process death
+    # ingest limits
+    "MAX_CONTENT_LENGTH": 1_048_576,  # bytes per request body
+    "MAX_BATCH": 500,  # reports per batch
+    "MAX_MEASUREMENTS": 4096,  # channels per report
+    "MAX_SKEW_S": 30.0,  # how far in the future measured_at may be (node clocks drift)
+    # scheduler
+    "SCHEDULER_ENABLED": False,  # create_app never starts threads; `occfuse serve` turns this on
+    "LOG_LEVEL": "INFO",
+    # initial fusion settings of a new database (see module docstring)
+    "INTERVAL_S": 10.0,
+    "RULE": "k_of_n",
+    "K": 2,
+    "TARGET_PF": 0.01,
+    "MIN_NODES": 2,
+    "WINDOW_S": 0.0,
+    "MAX_AGE_S": 30.0,
+    "CONFIDENCE": 0.95,
+    "PRIOR": 0.5,
+    "SNR_DB": -10.0,
+}
+
+FUSION_KEYS = ("RULE", "K", "TARGET_PF", "MIN_NODES", "WINDOW_S", "MAX_AGE_S", "INTERVAL_S", "CONFIDENCE",
+               "PRIOR", "SNR_DB")
+
+_TRUE, _FALSE = {"1", "true", "yes", "on"}, {"0", "false", "no", "off"}
+
+
+def _coerce(key: str, value: Any, where: str) -> Any:
+    """Convert `value` to the type of the default of `key`; raise ConfigError naming `where`."""
+    default = DEFAULTS[key]
+    if value is None:
+        return None
+    try:
+        if isinstance(default, bool):
+            if isinstance(value, bool):
+                return value
+            text = str(value).strip().lower()
+            if text in _TRUE | _FALSE:
+                return text in _TRUE
+            raise ValueError
+        if isinstance(default, int):
+            if isinstance(value, bool) or (isinstance(value, float) and not value.is_integer()):
+                raise ValueError
+            return int(value)
+        if isinstance(default, float):
+            if isinstance(value, bool):
+                raise ValueError
+            return float(value)
+        return str(value)
+    except (TypeError, ValueError):
+        kind = type(default).__name__ if default is not None else "str"
+        raise ConfigError(f"{where}: {key} must be a {kind}, was {value!r}") from None
+
+
+def load_settings(config_file: str | os.PathLike | None = None,
+                  environ: Mapping[str, str] | None = None,
+                  overrides: Mapping[str, Any] | None = None) -> dict[str, Any]:
+    """Return the settings dict: defaults < TOML file < environment < `overrides`.
+
+    Parameters
+    ----------
+    config_file : path, optional
+        TOML file with lower-case keys (``database_url = "..."``). Defaults to ``$OCCFUSE_CONFIG``.
+    environ : mapping, optional
+        Where to read ``OCCFUSE_*`` variables; defaults to ``os.environ``.
+    overrides : mapping, optional
+        Final values (the app factory's ``test_config``); unknown keys pass through untouched.
+    """
+    env = os.environ if environ is None else environ
+    settings = dict(DEFAULTS)
+    path = config_file or env.get("OCCFUSE_CONFIG")
+    if path:
+        try:
+            data = tomllib.loads(Path(path).read_text(encoding="utf-8"))
+        except FileNotFoundError:
+            raise ConfigError(f"config file {path} does not exist") from None
+        except tomllib.TOMLDecodeError as exc:
+            raise ConfigError(f"config file {path} is not valid TOML: {exc}") from None
+        for raw_key, value in data.items():
+            key = raw_key.upper()
+            if key not in DEFAULTS:
+                raise ConfigError(f"config file {path}: unknown setting {raw_key!r}; "
+                                  f"known: {', '.join(k.lower() for k in DEFAULTS)}")
+            settings[key] = _coerce(key, value, f"config file {path}")
+    for key in DEFAULTS:
+        name = f"OCCFUSE_{key}"
+        if name in env and env[name] != "":
+            settings[key] = _coerce(key, env[name], f"environment variable {name}")
+    if overrides:
+        for key, value in overrides.items():
+            settings[key] = _coerce(key, value, "configuration") if key in DEFAULTS else value
+    return settings

@@ -1,0 +1,117 @@
+"""Database engine and sessions, SQLite pragmas, and the migration runner.
+
+SQLite notes (see DEVELOPERS.md): write transactions start with ``BEGIN IMMEDIATE`` so a read-then-write
+transaction never fails with "database is locked" when another writer commits first; WAL mode lets readers
+run during writes; foreign keys are switched on per connection. Python 3.11's sqlite3 has no ``autocommit``
+attribute, hence the ``isolation_level = None`` + ``begin`` event recipe.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from flask import Flask, current_app, g
+from sqlalchemy import create_engine, event, inspect
+from sqlalchemy.engine import Engine
+from sqlalchemy.orm import Session, sessionmaker
+
+from .errors import ConfigError
+
+__all__ = ["make_engine", "init_app", "get_session", "alembic_config", "upgrade", "current_revision",
+           "head_revision", "MIGRATIONS"]
+
+MIGRATIONS = Path(__file__).resolve().parent.parent / "migrations"
+
+
+def make_engine(url: str, *, foreign_keys: bool = True, synchronous: str = "NORMAL") -> Engine:
+    """Create an engine; on SQLite set WAL, busy timeout, `synchronous` and foreign keys on each connection."""
+    if synchronous.upper() not in {"OFF", "NORMAL", "FULL", "EXTRA"}:
+        raise ConfigError(f"SQLITE_SYNCHRONOUS must be OFF, NORMAL, FULL or EXTRA, was {synchronous!r}")
+    try:
+        engine = create_engine(url, connect_args={"timeout": 15} if url.startswith("sqlite") else {},
+                               pool_pre_ping=not url.startswith("sqlite"))
+    except Exception as exc:  # ArgumentError, missing driver, ...
+        raise ConfigError(f"DATABASE_URL {url!r} cannot be used: {exc}") from None
+    if engine.dialect.name == "sqlite":
+
+        @event.listens_for(engine, "connect")
+        def _on_connect(dbapi_conn, _record):
+            dbapi_conn.isolation_level = None  # SQLAlchemy emits BEGIN itself (see module docstring)
+            for pragma in ("journal_mode=WAL", "busy_timeout=15000", f"synchronous={synchronous.upper()}",
+                           f"foreign_keys={'ON' if foreign_keys else 'OFF'}"):
+                dbapi_conn.execute(f"PRAGMA {pragma}")
+
+        @event.listens_for(engine, "begin")
+        def _on_begin(conn):
+            conn.exec_driver_sql("BEGIN IMMEDIATE")
+
+    return engine
+
+
+def init_app(app: Flask) -> None:
+    """Give the app an engine and a session factory; close the request's session at teardown."""
+    engine = make_engine(app.config["DATABASE_URL"], synchronous=app.config["SQLITE_SYNCHRONOUS"])
+    app.extensions["occfuse.engine"] = engine
+    app.extensions["occfuse.sessions"] = sessionmaker(engine, expire_on_commit=False)
+    app.teardown_appcontext(_close_session)
+
+
+def get_session() -> Session:
+    """The current request's session (one per request, closed at teardown)."""
+    if "db_session" not in g:
+        g.db_session = current_app.extensions["occfuse.sessions"]()
+    return g.db_session
+
+
+def _close_session(_exc=None) -> None:
+    session = g.pop("db_session", None)
+    if session is not None:
+        session.close()
+
+
+# --- migrations -------------------------------------------------------------------------------------------
+
+def alembic_config(url: str):
+    """An Alembic Config built in code (no alembic.ini, so no logging.fileConfig surprises)."""
+    from alembic.config import Config
+
+    if not (MIGRATIONS / "env.py").exists():
+        raise ConfigError(f"migrations not found at {MIGRATIONS}; install occfuse from a checkout (pip install -e .)")
+    cfg = Config()
+    cfg.set_main_option("script_location", str(MIGRATIONS))
+    cfg.set_main_option("sqlalchemy.url", url.replace("%", "%%"))  # configparser escaping
+    return cfg
+
+
+def upgrade(url: str, revision: str = "head") -> None:
+    """Upgrade the database at `url` to `revision` in one transaction (foreign keys off during batch copies)."""
+    from alembic import command
+
+    cfg = alembic_config(url)
+    engine = make_engine(url, foreign_keys=False)
+    try:
+        with engine.begin() as conn:
+            cfg.attributes["connection"] = conn
+            command.upgrade(cfg, revision)
+            if conn.dialect.name == "sqlite":
+                broken = conn.exec_driver_sql("PRAGMA foreign_key_check").fetchall()
+                if broken:
+                    raise RuntimeError(f"migration left dangling foreign keys: {broken[:5]}")
+    finally:
+        engine.dispose()
+
+
+def current_revision(engine: Engine) -> str | None:
+    """The revision the database is at, or None for an empty database."""
+    from alembic.runtime.migration import MigrationContext
+
+    with engine.connect() as conn:
+        if not inspect(conn).has_table("alembic_version"):
+            return None
+        return MigrationContext.configure(conn).get_current_revision()
+
+
+def head_revision(url: str) -> str | None:
+    from alembic.script import ScriptDirectory
+
+    return ScriptDirectory.from_config(alembic_config(url)).get_current_head()

@@ -311,7 +311,13 @@ def _fuse_hard(t, mask, n, rule, target_pf, k, snr, pd, pf):
         votes = mask & (special.gammaincc(n, np.where(mask, t, 0.0)) < p_loc)
     p_nom = np.where(np.isnan(p_loc), target_pf, p_loc)
     pf_m = np.broadcast_to(p_nom if pf is None else pf, t.shape)
-    if pd is None:
+    if pd is None and n.shape[-1] == 1 and (snr.ndim < 2 or snr.shape[-1] == 1):
+        # The nominal Pf depends only on the count of reporters: one ncx2 call per count.
+        counts, first, inv = np.unique(n_rep, return_index=True, return_inverse=True)
+        p_u = p_nom[first]
+        pd_u = energy.detection_awgn(energy.threshold(p_u, n), n, snr)
+        pd_m = np.broadcast_to(pd_u, (t.shape[0], counts.size))[:, inv.ravel()]
+    elif pd is None:
         tau = energy.threshold(p_nom, n)
         pd_m = np.broadcast_to(energy.detection_awgn(tau, n, snr), t.shape)
     else:

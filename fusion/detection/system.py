@@ -288,7 +288,7 @@ def chair_varshney_performance(pd, pf, threshold):
     return SystemPerformance(prob1[fires].sum(), prob0[fires].sum())
 
 
-def weighted_gamma_sf(x, shapes, scales, *, tol=1e-13, max_terms=200_000):
+def weighted_gamma_sf(x, shapes, scales, *, tol=1e-13, max_terms=20_000):
     """Survival function of ``sum_i X_i``, ``X_i ~ Gamma(shapes[i], scales[i])``.
 
     Parameters
@@ -326,19 +326,29 @@ def weighted_gamma_sf(x, shapes, scales, *, tol=1e-13, max_terms=200_000):
     rho = a.sum()
     r = 1.0 - b1 / b
     log_c = np.sum(a * np.log(b1 / b))
-    g = [0.0]  # g[0] unused
-    delta = [1.0]
-    total = np.exp(log_c) * special.gammaincc(rho, np.maximum(x, 0) / b1)
-    mass = np.exp(log_c)
+    if log_c < -700.0:
+        raise ValueError(
+            "the Moschopoulos series needs too many terms for these `shapes` and `scales` "
+            f"(log C = {log_c:.0f}); use `shifted_gamma_sf` for large, unequal sums"
+        )
+    xs = np.maximum(x, 0.0) / b1
+    g = np.zeros(64)  # g[j] = sum_i a_i r_i^j / j, grown on demand
+    pk = np.zeros(64)  # pk[k] = C delta_k, a pmf over k; same linear recursion as delta
+    pk[0] = np.exp(log_c)
+    total = pk[0] * special.gammaincc(rho, xs)
+    mass = pk[0]
     k = 0
-    while 1.0 - mass > tol and k < max_terms:
+    while 1.0 - mass > tol:
         k += 1
-        g.append(float(np.sum(a * r**k)) / k)
-        d = sum(j * g[j] * delta[k - j] for j in range(1, k + 1)) / k
-        delta.append(d)
-        w = np.exp(log_c) * d
-        total = total + w * special.gammaincc(rho + k, np.maximum(x, 0) / b1)
-        mass += w
+        if k > max_terms:
+            raise ValueError(f"the Moschopoulos series did not reach `tol` in {max_terms} terms")
+        if k >= g.size:
+            g, pk = np.resize(g, 2 * g.size), np.resize(pk, 2 * g.size)
+        g[k] = np.sum(a * r**k) / k
+        # Moschopoulos (1985): delta_{k+1} = 1/(k+1) sum_j j g_j delta_{k+1-j}, one dot per term.
+        pk[k] = np.dot(np.arange(1, k + 1) * g[1 : k + 1], pk[k - 1 :: -1][:k]) / k
+        total = total + pk[k] * special.gammaincc(rho + k, xs)
+        mass += pk[k]
     return np.clip(total, 0.0, 1.0)
 
 

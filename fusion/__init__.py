@@ -1,0 +1,27 @@
+"""occfuse: cooperative spectrum-occupancy fusion service."""
+
+from __future__ import annotations
+
+import logging
+
+from flask import Flask
+
+__all__ = ["create_app"]
+
+
+def create_app(test_config: dict | None = None) -> Flask:
+    """Build the Flask app. Starts no threads: `occfuse serve` starts the scheduler itself."""
+    from . import api, db
+    from .config import load_settings
+
+    app = Flask(__name__)
+    # Defaults, then the TOML file / OCCFUSE_* environment, then the caller's overrides.
+    settings = load_settings(overrides=test_config)
+    app.config.update(settings)
+    app.json.sort_keys = False
+    logging.getLogger("fusion").setLevel(app.config["LOG_LEVEL"])
+    # Storage: one engine per app (and per process), one session per request.
+    db.init_app(app)
+    # The API: errors, auth, blueprints.
+    api.init_app(app)
+    return app

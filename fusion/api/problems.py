@@ -1,0 +1,119 @@
+"""RFC 9457 problem+json for every error, and the JSON body/query helpers that raise them."""
+
+from __future__ import annotations
+
+import json
+
+from flask import Response, current_app, request
+from pydantic import BaseModel, ValidationError
+from werkzeug.exceptions import HTTPException
+
+from ..errors import APIError, BadRequest, Unprocessable
+from ..plan import error_path
+
+__all__ = ["problem", "init_app", "read_body", "read_query", "respond", "validation_errors"]
+
+PROBLEM_TYPE = "application/problem+json"
+
+
+def problem(status: int, title: str, detail: str | None = None, errors: list | None = None,
+            headers: dict | None = None) -> Response:
+    body = {"type": "about:blank", "title": title, "status": status}
+    if detail:
+        body["detail"] = detail
+    if errors:
+        body["errors"] = errors
+    response = Response(json.dumps(body), status=status, mimetype=PROBLEM_TYPE)
+    for key, value in (headers or {}).items():
+        response.headers[key] = value
+    return response
+
+
+def validation_errors(exc: ValidationError, prefix: tuple = ()) -> list[dict]:
+    return [{"path": error_path(prefix + tuple(e["loc"])), "message": e["msg"]}
+            for e in exc.errors(include_url=False, include_context=False, include_input=False)]
+
+
+def _unprocessable(errors: list[dict], what: str) -> Unprocessable:
+    detail = "; ".join(f"{e['path']}: {e['message']}" for e in errors[:5]) + (" ..." if len(errors) > 5 else "")
+    return Unprocessable(f"{what} failed validation, nothing was stored: {detail}", errors=errors)
+
+
+def read_body(model: type[BaseModel] | None = None):
+    """Return the parsed JSON body (a dict/list), or a validated `model` instance.
+
+    415 without a JSON content type, 413 over MAX_CONTENT_LENGTH (raised by get_data), 400 for malformed JSON,
+    422 with field paths for schema errors.
+    """
+    if not request.is_json:
+        raise _UnsupportedMediaType()
+    raw = request.get_data(cache=True)
+    try:
+        parsed = json.loads(raw, parse_constant=_reject_constant)
+    except _NonFinite as exc:
+        raise Unprocessable(f"the body contains {exc.args[0]}, which is not a finite number; JSON has no NaN or "
+                            f"Infinity", errors=[{"path": "(body)", "message": f"{exc.args[0]} is not allowed"}])
+    except (ValueError, UnicodeDecodeError) as exc:
+        raise BadRequest(f"the body is not valid JSON: {exc}") from None
+    if model is None:
+        return parsed
+    try:
+        return model.model_validate_json(raw)
+    except ValidationError as exc:
+        raise _unprocessable(validation_errors(exc), "the request body") from None
+
+
+def read_query(model: type[BaseModel]):
+    """Validate the query string with a non-strict model (query values are strings)."""
+    try:
+        return model.model_validate(request.args.to_dict())
+    except ValidationError as exc:
+        raise _unprocessable(validation_errors(exc, ("query",)), "the query string") from None
+
+
+def respond(model: type[BaseModel], data, status: int = 200) -> Response:
+    """Serialise `data` through `model` (RFC 3339 datetimes, NaN as null)."""
+    obj = data if isinstance(data, model) else model.model_validate(data)
+    return Response(obj.model_dump_json(), status=status, mimetype="application/json")
+
+
+class _NonFinite(ValueError):
+    pass
+
+
+def _reject_constant(name: str):
+    raise _NonFinite(name)
+
+
+class _UnsupportedMediaType(APIError):
+    status, title = 415, "Unsupported Media Type"
+
+    def __init__(self):
+        super().__init__("send the body as JSON with the header Content-Type: application/json")
+
+
+def init_app(app) -> None:
+    @app.errorhandler(APIError)
+    def _api_error(exc: APIError):
+        return problem(exc.status, exc.title, exc.detail, exc.errors, exc.headers)
+
+    @app.errorhandler(HTTPException)
+    def _http_error(exc: HTTPException):
+        detail = exc.description
+        if exc.code == 404:
+            detail = f"no such resource: {request.path}; the API lives under /api/v1 (see /api/v1/openapi.json)"
+        elif exc.code == 405:
+            detail = f"{request.method} is not allowed on {request.path}; allowed: {', '.join(exc.valid_methods or [])}"
+        elif exc.code == 413:
+            limit = current_app.config.get("MAX_CONTENT_LENGTH")
+            detail = f"the body is larger than the server's limit of {limit} bytes; send smaller batches"
+        headers = {k: v for k, v in exc.get_headers() if k.lower() != "content-type"}
+        return problem(exc.code or 500, exc.name, detail, headers=headers)
+
+    @app.errorhandler(Exception)
+    def _unhandled(exc: Exception):
+        if isinstance(exc, HTTPException):
+            return _http_error(exc)
+        # Log the traceback for the operator; the client gets no internals.
+        current_app.logger.exception("unhandled error on %s %s", request.method, request.path)
+        return problem(500, "Internal Server Error", "the server failed to handle this request; it has been logged")

@@ -1,0 +1,43 @@
+"""/api/v1/reports: nodes post one report or a batch; all-or-nothing per request."""
+
+from __future__ import annotations
+
+from flask import Blueprint, current_app, g
+
+from ..db import get_session
+from ..errors import Unprocessable
+from ..ingest import ingest_reports
+from ..models import Node, utcnow
+from .auth import role
+from .problems import read_body, respond
+from .schemas import BatchAck, ReportAck, ReportBatchIn, ReportIn
+
+__all__ = ["bp"]
+
+bp = Blueprint("reports", __name__, url_prefix="/api/v1/reports")
+
+
+@bp.post("")
+@role("node")
+def create():
+    parsed = read_body()
+    batch = isinstance(parsed, dict) and "reports" in parsed
+    body = read_body(ReportBatchIn if batch else ReportIn)
+    reports = body.reports if batch else [body]
+    limit = current_app.config["MAX_BATCH"]
+    if len(reports) > limit:
+        raise Unprocessable(f"reports: at most {limit} reports per batch, got {len(reports)}; split the batch",
+                            errors=[{"path": "reports", "message": f"more than {limit} items"}])
+    session = get_session()
+    node = session.get(Node, g.node_id)
+    results = ingest_reports(session, node, reports, prefix="reports" if batch else "", now=utcnow(),
+                             max_skew_s=current_app.config["MAX_SKEW_S"],
+                             max_measurements=current_app.config["MAX_MEASUREMENTS"])
+    session.commit()  # durable before we acknowledge
+    created = sum(status == "created" for _, status in results)
+    status_code = 201 if created else 200
+    if not batch:
+        seq, status = results[0]
+        return respond(ReportAck, {"seq": seq, "status": status}, status_code)
+    return respond(BatchAck, {"created": created, "duplicates": len(results) - created,
+                              "results": [{"seq": s, "status": st} for s, st in results]}, status_code)

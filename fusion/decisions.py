@@ -1,0 +1,73 @@
+"""Reading what the service decided: latest state per channel, free channels, a channel's history."""
+
+from __future__ import annotations
+
+from datetime import datetime
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from .errors import NotFound
+from .models import Decision, Epoch
+from .plan import current_plan
+
+__all__ = ["confidence_of", "latest_states", "free_channels", "channel_history", "last_epoch"]
+
+
+def confidence_of(state: str, p_occupied: float | None) -> float | None:
+    """Probability that the published state is right; None for unknown."""
+    if p_occupied is None or state == "unknown":
+        return None
+    return p_occupied if state == "occupied" else 1.0 - p_occupied
+
+
+def last_epoch(session: Session) -> Epoch | None:
+    return session.scalars(select(Epoch).order_by(Epoch.id.desc()).limit(1)).first()
+
+
+def latest_states(session: Session) -> dict:
+    """``{as_of, rule, channels: [...]}`` for the current plan; channels never decided are unknown."""
+    plan = current_plan(session)
+    epoch = last_epoch(session)
+    decided = {}
+    if epoch is not None:
+        decided = {d.channel_id: d for d in session.scalars(select(Decision).where(Decision.epoch_id == epoch.id))}
+    channels = []
+    for ch in plan.channels if plan else []:
+        d = decided.get(ch.channel_id)
+        state = d.state if d else "unknown"
+        p = d.p_occupied if d else None
+        channels.append({"id": ch.channel_id, "center_hz": ch.center_hz, "bandwidth_hz": ch.bandwidth_hz,
+                         "state": state, "p_occupied": p, "confidence": confidence_of(state, p),
+                         "nodes": d.nodes if d else 0, "decided_at": d.decided_at if d else None})
+    return {"as_of": epoch.started_at if epoch else None, "rule": epoch.rule if epoch else None,
+            "channels": channels}
+
+
+def free_channels(session: Session, min_confidence: float) -> dict:
+    """Channels whose latest state is free with at least `min_confidence`.
+
+    A channel is free only when the epoch's own rule called it free (enough fresh nodes and the configured
+    confidence); `min_confidence` can tighten that bar, never loosen it.
+    """
+    out = latest_states(session)
+    out["channels"] = [c for c in out["channels"]
+                       if c["state"] == "free" and c["confidence"] is not None and c["confidence"] >= min_confidence]
+    out["min_confidence"] = min_confidence
+    return out
+
+
+def channel_history(session: Session, channel_id: str, since: datetime, until: datetime, limit: int) -> dict:
+    plan = current_plan(session)
+    known = {ch.channel_id for ch in plan.channels} if plan else set()
+    stmt = (select(Decision).where(Decision.channel_id == channel_id, Decision.decided_at >= since,
+                                   Decision.decided_at <= until)
+            .order_by(Decision.decided_at).limit(limit))
+    rows = list(session.scalars(stmt))
+    if channel_id not in known and not rows:
+        raise NotFound(f"channel {channel_id!r} is not in the current plan and has no history")
+    decided = [d for d in rows if d.state != "unknown"]
+    occupancy = (sum(d.state == "occupied" for d in decided) / len(decided)) if decided else None
+    return {"channel": channel_id, "since": since, "until": until, "occupancy": occupancy,
+            "decisions": [{"decided_at": d.decided_at, "state": d.state, "p_occupied": d.p_occupied,
+                           "nodes": d.nodes} for d in rows]}

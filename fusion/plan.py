@@ -1,0 +1,78 @@
+"""The band plan: load a TOML plan file, store a new revision, read the current one."""
+
+from __future__ import annotations
+
+import tomllib
+from pathlib import Path
+
+from pydantic import ValidationError
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session, selectinload
+
+from .api.schemas import PlanIn
+from .errors import PlanError
+from .models import Channel, PlanRevision
+
+__all__ = ["read_plan_file", "store_plan", "current_plan", "error_path"]
+
+
+def error_path(loc) -> str:
+    """('measurements', 2, 'channel') -> 'measurements[2].channel'."""
+    out = ""
+    for part in loc:
+        if isinstance(part, int):
+            out += f"[{part}]"
+        else:
+            out += ("." if out else "") + str(part)
+    return out or "(body)"
+
+
+def read_plan_file(path: str | Path) -> PlanIn:
+    """Parse a TOML plan: ``[[channel]]`` tables with ``id``, ``center_hz``, ``bandwidth_hz``.
+
+    Integer ids (``id = 21``) are taken as the string ``"21"``; numbers may be TOML ints or floats.
+    """
+    try:
+        data = tomllib.loads(Path(path).read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise PlanError(f"plan file {path} does not exist") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise PlanError(f"plan file {path} is not valid TOML: {exc}") from None
+    tables = data.get("channel")
+    if not isinstance(tables, list) or not tables:
+        raise PlanError(f"plan file {path} has no [[channel]] tables")
+    channels = []
+    for i, table in enumerate(tables):
+        item = dict(table)
+        if isinstance(item.get("id"), int) and not isinstance(item.get("id"), bool):
+            item["id"] = str(item["id"])
+        for key in ("center_hz", "bandwidth_hz"):
+            if isinstance(item.get(key), int) and not isinstance(item.get(key), bool):
+                item[key] = float(item[key])
+        channels.append(item)
+    try:
+        return PlanIn.model_validate({"channels": channels})
+    except ValidationError as exc:
+        errors = [{"path": error_path(("channel",) + tuple(e["loc"])[1:]), "message": e["msg"]}
+                  for e in exc.errors(include_url=False)]
+        detail = "; ".join(f"{e['path']}: {e['message']}" for e in errors)
+        raise PlanError(f"plan file {path} is invalid: {detail}", errors) from None
+
+
+def current_plan(session: Session) -> PlanRevision | None:
+    """The newest plan revision with its channels in position order, or None before any plan is loaded."""
+    stmt = (select(PlanRevision).options(selectinload(PlanRevision.channels))
+            .order_by(PlanRevision.revision.desc()).limit(1))
+    return session.scalars(stmt).first()
+
+
+def store_plan(session: Session, plan: PlanIn) -> PlanRevision:
+    """Store `plan` as a new revision (reports are validated against the newest one)."""
+    newest = session.scalar(select(func.max(PlanRevision.revision)))
+    revision = PlanRevision(revision=(newest or 0) + 1)
+    session.add(revision)
+    for position, ch in enumerate(plan.channels):
+        revision.channels.append(Channel(position=position, channel_id=ch.id, center_hz=ch.center_hz,
+                                         bandwidth_hz=ch.bandwidth_hz))
+    session.flush()
+    return revision

@@ -15,7 +15,7 @@ from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
 from sqlalchemy.types import TypeDecorator
 
 __all__ = ["Base", "UTCDateTime", "Node", "PlanRevision", "Channel", "Report", "Epoch", "Decision",
-           "NodeReliability", "FusionSettings", "utcnow", "pack", "unpack"]
+           "NodeReliability", "FusionSettings", "FusionState", "utcnow", "pack", "unpack"]
 
 NAMING = {
     "ix": "ix_%(column_0_label)s",
@@ -205,3 +205,16 @@ class FusionSettings(Base):
 
     def __repr__(self) -> str:
         return f"FusionSettings(rule={self.rule!r}, k={self.k!r}, interval_s={self.interval_s!r})"
+
+
+class FusionState(Base):
+    """Learned state of the epoch that is not per node (the channel tracker), keyed by name."""
+
+    __tablename__ = "fusion_state"
+
+    key: Mapped[str] = mapped_column(String(64), primary_key=True)
+    value: Mapped[dict] = mapped_column(JSON)
+    updated_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow, onupdate=utcnow)
+
+    def __repr__(self) -> str:
+        return f"FusionState(key={self.key!r})"

@@ -2,7 +2,7 @@
 
 Revision ID: 0001
 Revises: 
-Create Date: 2026-12-01 23:05:31.286820
+Create Date: 2026-12-01 23:51:10.612317
 """
 from alembic import op
 import sqlalchemy as sa
@@ -44,6 +44,12 @@ def upgrade() -> None:
     sa.Column('snr_db', sa.Float(), nullable=False),
     sa.Column('updated_at', fusion.models.UTCDateTime(timezone=True), nullable=False),
     sa.PrimaryKeyConstraint('id', name=op.f('pk_fusion_settings'))
+    )
+    op.create_table('fusion_state',
+    sa.Column('key', sa.String(length=64), nullable=False),
+    sa.Column('value', sa.JSON(), nullable=False),
+    sa.Column('updated_at', fusion.models.UTCDateTime(timezone=True), nullable=False),
+    sa.PrimaryKeyConstraint('key', name=op.f('pk_fusion_state'))
     )
     op.create_table('node',
     sa.Column('id', sa.Integer(), nullable=False),
@@ -145,6 +151,7 @@ def downgrade() -> None:
     op.drop_table('channel')
     op.drop_table('plan_revision')
     op.drop_table('node')
+    op.drop_table('fusion_state')
     op.drop_table('fusion_settings')
     with op.batch_alter_table('epoch', schema=None) as batch_op:
         batch_op.drop_index(batch_op.f('ix_epoch_started_at'))

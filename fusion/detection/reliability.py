@@ -28,7 +28,7 @@ References
 from __future__ import annotations
 
 import numpy as np
-from scipy import special, stats
+from scipy import special
 
 from . import energy
 
@@ -78,20 +78,25 @@ class ReliabilityModel:
         by default) so a new node starts at a typical operating point and its own votes soon
         dominate.  The prior must have mean Pd > mean Pf, or the labels can swap [1]_.
     confidence_bar : float
-        A fused decision is used as a label only when ``P(occupied) >= bar`` (occupied) or
-        ``<= 1 - bar`` (free) and agrees with the published decision.
+        A channel is used as a label only when ``P(occupied) >= bar`` (occupied) or
+        ``<= 1 - bar`` (free), and agrees with the published decision if one is given.
     leave_one_out : bool
-        Judge node ``i`` only where the decision stays above the bar once its own vote's
-        Chair-Varshney contribution is taken out of the fused log-odds, so that a node
-        cannot confirm itself.
+        Judge node ``i`` on a channel only where the posterior stays beyond the bar once its
+        own contribution is taken out of the fused log-odds, so that a node cannot confirm
+        itself.  Without it, honest nodes' Pd and SNR come out inflated (the tests measure
+        it).
     memory, snr_memory : float
         Effective number of labelled observations remembered for Pd/Pf and for SNR
         (exponential forgetting), so estimates track nodes that change.
     local_pf : float
         Nominal local false-alarm rate of the node's vote threshold (used to compute votes
         when none are given, and as the reference of the ``suspect`` test).
-    pf_margin, pd_min : float
-        A node meets its specification when ``Pf <= local_pf + pf_margin`` and ``Pd >= pd_min``.
+    pf_margin, low_ratio : float
+        A node meets its specification when
+        ``low_ratio * local_pf <= Pf <= local_pf + pf_margin`` and ``Pd >= low_ratio * local_pf``.
+        An honest energy detector with a right noise floor has ``Pf = local_pf`` exactly and
+        ``Pd >= Pf`` at any SNR, and fusion errors only push both towards each other's
+        values, so the band allows for estimation noise, not for physics.
     suspect_prob, clear_prob : float
         ``suspect`` is raised when the posterior probability that the node is out of
         specification reaches ``suspect_prob`` and cleared when it falls below ``clear_prob``.
@@ -132,6 +137,10 @@ class ReliabilityModel:
 
     Notes
     -----
+    Labels without ground truth are the fusion's own output, so a dishonest majority is
+    learned as the truth: the estimates hold only while honest, informative nodes carry the
+    confident decisions (Rawat et al. put the blind point at half the nodes flipping).
+
     With ``k`` votes of 1 among ``n`` labelled occupied observations the Pd posterior is
     ``Beta(a + k, b + n - k)`` (agreement counting, METHODS.md section 5.4 b); the mean is the
     Bayes predictive vote rate, so plugging it into the Chair-Varshney weights [2]_ needs no
@@ -155,7 +164,7 @@ class ReliabilityModel:
 
     def __init__(self, *, prior_pd=(4.0, 1.0), prior_pf=(1.0, 9.0), confidence_bar=0.9,
                  leave_one_out=True, memory=400.0, snr_memory=50.0, local_pf=0.1,
-                 pf_margin=0.1, pd_min=0.3, suspect_prob=0.99, clear_prob=0.5,
+                 pf_margin=0.1, low_ratio=0.5, suspect_prob=0.99, clear_prob=0.5,
                  suspect_trust=0.0, drift_margin_db=2.0, drift_trust=0.5,
                  learned_noise_on_drift=True, noise_window=21, noise_min_epochs=5,
                  stuck_epochs=3, channel_shrinkage=20.0, ci_level=0.95):
@@ -167,7 +176,7 @@ class ReliabilityModel:
         self.snr_memory = snr_memory
         self.local_pf = local_pf
         self.pf_margin = pf_margin
-        self.pd_min = pd_min
+        self.low_ratio = low_ratio
         self.suspect_prob = suspect_prob
         self.clear_prob = clear_prob
         self.suspect_trust = suspect_trust
@@ -194,7 +203,7 @@ class ReliabilityModel:
             v = getattr(self, name)
             if not 0.5 < v < 1:
                 raise ValueError(f"`{name}` must lie in (0.5, 1), was {v!r}")
-        for name in ("local_pf", "pd_min", "clear_prob"):
+        for name in ("local_pf", "low_ratio", "clear_prob"):
             v = getattr(self, name)
             if not 0 < v < 1:
                 raise ValueError(f"`{name}` must lie in (0, 1), was {v!r}")
@@ -248,8 +257,9 @@ class ReliabilityModel:
 
     # -- the epoch update -----------------------------------------------------------------
 
-    def update(self, *, t, n_samples, report_time_s, now_s, max_age_s, decision, p_occupied,
-               power_dbm=None, noise_dbm_reported=None, votes=None, local_pf=None, pinned=None):
+    def update(self, *, t, n_samples, report_time_s, now_s, max_age_s, p_occupied, decision=None,
+               power_dbm=None, noise_dbm_reported=None, votes=None, local_pf=None, contribution=None,
+               pinned=None):
         """Learn from one fusion epoch.
 
         Parameters
@@ -263,18 +273,26 @@ class ReliabilityModel:
             A report is learned from once, and only while younger than ``max_age_s``.
         now_s, max_age_s : float
             Epoch time and report freshness limit, seconds.
-        decision : array_like, shape (n_channels,)
-            Published decision, 1 occupied, 0 free, NaN unknown.
         p_occupied : array_like, shape (n_channels,)
-            Posterior P(occupied) of the fusion.
+            Posterior P(occupied) of the fusion (after any tracking filter); NaN unknown.
+        decision : array_like, shape (n_channels,), optional
+            Published decision, 1 occupied, 0 free, NaN unknown.  When given, a label must
+            also agree with it.  With ``leave_one_out`` leave it out: a decision that
+            includes the node's own report biases its counts (it keeps the node's false
+            alarms out of the "free" labels).
         power_dbm : array_like, shape (n_nodes, n_channels), optional
             Reported mean powers, dBm (noise floor learning and the ``stuck`` check).
         noise_dbm_reported : array_like, shape (n_nodes,), optional
             Each node's own noise floor figure, dBm; NaN where it gave none.
         votes : array_like, shape (n_nodes, n_channels), optional
-            Local hard decisions (1/0, NaN no report).  Default ``t > threshold(local_pf, N)``.
+            Local hard decisions (1/0; ignored where ``t`` is NaN), e.g. ``FusionResult.votes``.
+            Default ``t > threshold(local_pf, N)``, the model's own vote at ``local_pf``.
         local_pf : float or array_like, shape (n_nodes,), optional
             Local false-alarm rate of the votes; default the ``local_pf`` parameter.
+        contribution : array_like, shape (n_nodes, n_channels), optional
+            Each node's term in the fused log-odds, nats (e.g. the clipped, trust-weighted
+            ``node_llr`` of ``weighted_llr``), for the leave-one-out check.  Default: the
+            Chair-Varshney weight of its vote times its trust.
         pinned : sequence of {"trusted", "excluded", None}, optional
             Admin pins, replacing the stored ones; ``None`` keeps them.
 
@@ -296,7 +314,10 @@ class ReliabilityModel:
                              f"was {n_nodes}")
         elif n_nodes > self.n_nodes_:
             self.resize(n_nodes)
-        n = np.broadcast_to(np.asarray(n_samples, dtype=float), t.shape)
+        n = np.asarray(n_samples, dtype=float)
+        if n.ndim == 1 and n.shape[0] == n_nodes:
+            n = n[:, None]  # (n_nodes,) means one value per node, as in rules.fuse
+        n = np.broadcast_to(n, t.shape)
         if np.any(~(n > 0)):
             raise ValueError(f"`n_samples` must be positive, was {n[~(n > 0)].flat[0]!r}")
         rts = np.asarray(report_time_s, dtype=float)
@@ -306,10 +327,10 @@ class ReliabilityModel:
             raise ValueError(f"`now_s` must be finite, was {now_s!r}")
         if not max_age_s > 0:
             raise ValueError(f"`max_age_s` must be positive, was {max_age_s!r}")
-        dec = np.asarray(decision, dtype=float)
         p = np.asarray(p_occupied, dtype=float)
+        dec = None if decision is None else np.asarray(decision, dtype=float)
         for name, arr in (("decision", dec), ("p_occupied", p)):
-            if arr.shape != (n_channels,):
+            if arr is not None and arr.shape != (n_channels,):
                 raise ValueError(f"`{name}` must have shape ({n_channels},), was {arr.shape}")
         with np.errstate(invalid="ignore"):
             bad = np.isfinite(p) & ~((p >= 0) & (p <= 1))
@@ -338,6 +359,10 @@ class ReliabilityModel:
                 bad = np.isfinite(u) & (u != 0) & (u != 1)
             if np.any(bad):
                 raise ValueError(f"`votes` must be 0, 1 or NaN, was {u[bad][0]!r}")
+        if contribution is not None:
+            contribution = np.asarray(contribution, dtype=float)
+            if contribution.shape != t.shape:
+                raise ValueError(f"`contribution` must have shape {t.shape}, was {contribution.shape}")
         if pinned is not None:
             self._set_pins(pinned)
 
@@ -352,7 +377,7 @@ class ReliabilityModel:
         self.noise_reported_dbm_ = np.where(fresh, noise_rep, self.noise_reported_dbm_)
         obs = fresh[:, None] & np.isfinite(u) & np.isfinite(t)
 
-        label1, label0 = self._labels(u, dec, p)
+        label1, label0 = self._labels(u, dec, p, contribution)
         self._learn_rates(np.where(obs, u, 0.0), obs & label1, obs & label0)
         self._learn_snr(t / n - 1.0, obs & label1)
         if power is not None:
@@ -363,24 +388,29 @@ class ReliabilityModel:
         self._refresh()
         return self
 
-    def _labels(self, u, dec, p):
+    def _labels(self, u, dec, p, contribution):
         """Confident labels per (node, channel), leave-one-out when asked."""
-        bar = self.confidence_bar
+        cut = special.logit(self.confidence_bar)
+        logit = special.logit(np.clip(np.nan_to_num(p, nan=0.5), 1e-12, 1 - 1e-12))
+        logit = np.where(np.isnan(p), 0.0, logit)  # no posterior, no label
         with np.errstate(invalid="ignore"):
-            occ = (p >= bar) & (dec == 1)
-            free = (p <= 1 - bar) & (dec == 0)
+            gate1 = np.ones(p.shape, bool) if dec is None else dec == 1
+            gate0 = np.ones(p.shape, bool) if dec is None else dec == 0
         if not self.leave_one_out:
-            return np.broadcast_to(occ, u.shape), np.broadcast_to(free, u.shape)
+            return (np.broadcast_to(gate1 & (logit >= cut), u.shape),
+                    np.broadcast_to(gate0 & (logit <= -cut), u.shape))
         # Chair & Varshney (1986): node i adds w+ = ln(Pd/Pf) for a 1, w- = ln((1-Pd)/(1-Pf))
         # for a 0; remove it (scaled by trust, as a weighted rule would) from the fused log-odds.
-        pd = np.clip(self.pd_channel_, _CLIP, 1 - _CLIP)
-        pf = np.clip(self.pf_, _CLIP, 1 - _CLIP)[:, None]
-        w = np.where(u == 1, np.log(pd / pf), np.log((1 - pd) / (1 - pf)))
-        contrib = np.where(np.isfinite(u), self.trust_[:, None] * w, 0.0)
-        logit = special.logit(np.clip(np.nan_to_num(p, nan=0.5), 1e-12, 1 - 1e-12))
+        # Only this leave-one-out posterior may gate the label: gating on the full posterior
+        # would drop the node's own false alarms from the "free" labels (a bias we measured).
+        if contribution is None:
+            pd = np.clip(self.pd_channel_, _CLIP, 1 - _CLIP)
+            pf = np.clip(self.pf_, _CLIP, 1 - _CLIP)[:, None]
+            w = np.where(u == 1, np.log(pd / pf), np.log((1 - pd) / (1 - pf)))
+            contribution = self.trust_[:, None] * w
+        contrib = np.where(np.isfinite(u) & np.isfinite(contribution), contribution, 0.0)
         loo = logit[None, :] - contrib
-        cut = special.logit(bar)
-        return occ[None, :] & (loo >= cut), free[None, :] & (loo <= -cut)
+        return gate1[None, :] & (loo >= cut), gate0[None, :] & (loo <= -cut)
 
     def _learn_rates(self, u, m1, m0):
         # Forgetting per observation: memory M keeps the last ~M labelled votes (lam = 1 - 1/M).
@@ -436,11 +466,12 @@ class ReliabilityModel:
         (ad, bd), (af, bf) = self.prior_pd, self.prior_pf
         post_d = (ad + self.kd_, bd + self.nd_ - self.kd_)
         post_f = (af + self.kf_, bf + self.nf_ - self.kf_)
-        q = [(1 - self.ci_level) / 2, (1 + self.ci_level) / 2]
+        q = np.array([(1 - self.ci_level) / 2, (1 + self.ci_level) / 2])
         for name, (a, b) in (("pd", post_d), ("pf", post_f)):
             setattr(self, name + "_", a / (a + b))
-            setattr(self, name + "_std_", stats.beta.std(a, b))
-            setattr(self, name + "_ci_", stats.beta.ppf(np.array(q)[None, :], a[:, None], b[:, None]))
+            setattr(self, name + "_std_", np.sqrt(a * b / ((a + b) ** 2 * (a + b + 1))))
+            # Equal-tailed Beta interval: betaincinv is the Beta quantile function.
+            setattr(self, name + "_ci_", special.betaincinv(a[:, None], b[:, None], q[None, :]))
         s = self.channel_shrinkage
         self.pd_channel_ = (self.kd_ch_ + s * self.pd_[:, None]) / (self.nd_ch_ + s)
         self.pf_channel_ = (self.kf_ch_ + s * self.pf_[:, None]) / (self.nf_ch_ + s)
@@ -450,9 +481,12 @@ class ReliabilityModel:
         floor, count = _nanmedian_rows(self.noise_history_)
         self.noise_dbm_ = np.where(count >= self.noise_min_epochs, floor, np.nan)
 
-        # Out of specification: Pf above local_pf + margin, or Pd below pd_min.
-        p_ok = (stats.beta.cdf(np.minimum(self.local_pf_ + self.pf_margin, 1.0), *post_f)
-                * stats.beta.sf(self.pd_min, *post_d))
+        # Out of specification: Pf outside [low * local_pf, local_pf + margin], or Pd below
+        # low * local_pf (an energy detector's Pd never falls below its Pf).
+        low = self.low_ratio * self.local_pf_
+        high = np.minimum(self.local_pf_ + self.pf_margin, 1.0)
+        p_ok = ((special.betainc(*post_f, high) - special.betainc(*post_f, low))
+                * special.betainc(post_d[1], post_d[0], 1.0 - low))
         self.p_violation_ = 1.0 - p_ok
         raise_ = self.p_violation_ >= self.suspect_prob
         keep = (self.suspect_ > 0) & (self.p_violation_ >= self.clear_prob)

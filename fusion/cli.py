@@ -1,0 +1,246 @@
+"""The ``occfuse`` command: thin wrappers over plain functions (registry, plan, decisions, server, demo)."""
+
+from __future__ import annotations
+
+import json
+import logging
+import os
+import signal
+import sys
+import threading
+
+import click
+
+from .errors import OccfuseError
+
+__all__ = ["main", "cli"]
+
+
+def _app(**overrides):
+    from . import create_app
+
+    return create_app(overrides or None)
+
+
+def _sessions(app):
+    return app.extensions["occfuse.sessions"]
+
+
+def _ensure_schema(app) -> None:
+    """Upgrade the database to the newest migration if it is behind (serve, demo, and the data commands)."""
+    from .db import current_revision, head_revision, upgrade
+
+    url = app.config["DATABASE_URL"]
+    if current_revision(app.extensions["occfuse.engine"]) != head_revision(url):
+        upgrade(url)
+
+
+class _Group(click.Group):
+    """Turns occfuse errors into one clear line and exit code 2 instead of a traceback."""
+
+    def invoke(self, ctx):
+        try:
+            return super().invoke(ctx)
+        except OccfuseError as exc:
+            click.echo(f"error: {exc}", err=True)
+            for item in getattr(exc, "errors", []) or []:
+                click.echo(f"  {item['path']}: {item['message']}", err=True)
+            ctx.exit(2)
+
+
+@click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"]})
+@click.option("--config", "config_file", type=click.Path(dir_okay=False), envvar="OCCFUSE_CONFIG",
+              help="TOML settings file (lower-case keys); OCCFUSE_* environment variables override it.")
+def cli(config_file):
+    """occfuse: fuse many sensor nodes' channel energy into free / occupied / unknown, with a probability."""
+    if config_file:
+        os.environ["OCCFUSE_CONFIG"] = config_file
+    logging.basicConfig(level=logging.WARNING, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    logging.getLogger("fusion").setLevel(logging.INFO)
+
+
+# --- database ---------------------------------------------------------------------------------------------
+
+@cli.group()
+def db():
+    """Database schema."""
+
+
+@db.command("upgrade")
+@click.option("--revision", default="head", show_default=True)
+def db_upgrade(revision):
+    """Apply migrations up to REVISION (creates the database if needed)."""
+    from .config import load_settings
+    from .db import upgrade
+
+    url = load_settings()["DATABASE_URL"]
+    upgrade(url, revision)
+    click.echo(f"database {_redact(url)} is at {revision}")
+
+
+def _redact(url: str) -> str:
+    from sqlalchemy.engine import make_url
+
+    return make_url(url).render_as_string(hide_password=True)
+
+
+# --- serving ----------------------------------------------------------------------------------------------
+
+@cli.command()
+@click.option("--host", default="127.0.0.1", show_default=True)
+@click.option("--port", default=8080, show_default=True, type=click.IntRange(0, 65535))
+def serve(host, port):
+    """Upgrade the database if needed, then serve the API and run the fusion epochs."""
+    from .server import LiveServer
+
+    app = _app()
+    _ensure_schema(app)
+    if not app.config.get("ADMIN_TOKEN"):
+        click.echo("warning: OCCFUSE_ADMIN_TOKEN is not set; admin routes (nodes, plan, fusion) are refused",
+                   err=True)
+    server = LiveServer(app, host, port)
+
+    def stop(signum, _frame):
+        click.echo(f"received signal {signum}, shutting down", err=True)
+        threading.Thread(target=server._server.shutdown, daemon=True).start()
+
+    signal.signal(signal.SIGTERM, stop)
+    signal.signal(signal.SIGINT, stop)
+    click.echo(f"occfuse serving on {server.url} (database {_redact(app.config['DATABASE_URL'])})")
+    server.serve_forever()
+    server._server.server_close()
+
+
+# --- nodes and plan ---------------------------------------------------------------------------------------
+
+@cli.group()
+def node():
+    """Sensor nodes."""
+
+
+@node.command("add")
+@click.argument("name")
+@click.option("--x-m", type=float)
+@click.option("--y-m", type=float)
+@click.option("--lat", type=float)
+@click.option("--lon", type=float)
+def node_add(name, x_m, y_m, lat, lon):
+    """Register node NAME and print its token (shown this once; only its hash is stored)."""
+    from pydantic import ValidationError
+
+    from .api.schemas import NodeIn
+    from .registry import register_node
+
+    try:
+        NodeIn(name=name, x_m=x_m, y_m=y_m, lat=lat, lon=lon)
+    except ValidationError as exc:
+        raise click.BadParameter(exc.errors()[0]["msg"], param_hint="NAME") from None
+    app = _app()
+    _ensure_schema(app)
+    with _sessions(app)() as session, session.begin():
+        _, token = register_node(session, name, x_m=x_m, y_m=y_m, lat=lat, lon=lon)
+    click.echo(token)
+    click.echo(f"node {name!r} registered; store this token now, it is not shown again", err=True)
+
+
+@node.command("list")
+def node_list():
+    """Nodes with last seen, trust and flags."""
+    from sqlalchemy import select
+
+    from .api.nodes import node_view
+    from .models import Node, NodeReliability
+
+    app = _app()
+    _ensure_schema(app)
+    with _sessions(app)() as session:
+        rows = session.execute(select(Node, NodeReliability).outerjoin(NodeReliability).order_by(Node.name)).all()
+        for n, r in rows:
+            v = node_view(n, r)
+            trust = "-" if v["trust"] is None else f"{v['trust']:.2f}"
+            click.echo(f"{v['name']:<20} last seen {v['last_seen'] or 'never'}  trust {trust}  "
+                       f"flags {','.join(v['flags']) or '-'}{'  DISABLED' if v['disabled'] else ''}")
+
+
+@cli.group()
+def plan():
+    """The band plan."""
+
+
+@plan.command("load")
+@click.argument("file", type=click.Path(exists=True, dir_okay=False))
+def plan_load(file):
+    """Load a TOML band plan ([[channel]] tables with id, center_hz, bandwidth_hz) as a new revision."""
+    from .plan import read_plan_file, store_plan
+
+    parsed = read_plan_file(file)
+    app = _app()
+    _ensure_schema(app)
+    with _sessions(app)() as session, session.begin():
+        revision = store_plan(session, parsed)
+        number = revision.revision
+    click.echo(f"plan revision {number}: {len(parsed.channels)} channels loaded from {file}")
+
+
+# --- answers ----------------------------------------------------------------------------------------------
+
+@cli.command()
+@click.option("--min-confidence", default=0.95, show_default=True, type=click.FloatRange(0, 1))
+@click.option("--json", "as_json", is_flag=True, help="Print the API's JSON instead of a table.")
+def free(min_confidence, as_json):
+    """Channels free now with at least MIN_CONFIDENCE (advisory: see the README's cautions)."""
+    from .api.schemas import ChannelsOut
+    from .decisions import free_channels
+
+    app = _app()
+    _ensure_schema(app)
+    with _sessions(app)() as session:
+        out = free_channels(session, min_confidence)
+    if as_json:
+        click.echo(ChannelsOut.model_validate(out).model_dump_json(indent=2))
+        return
+    if out["as_of"] is None:
+        click.echo("no fusion epoch has run yet: nothing is known to be free")
+        return
+    click.echo(f"as of {out['as_of'].isoformat()} ({out['rule']}), free with confidence >= {min_confidence}:")
+    if not out["channels"]:
+        click.echo("  none")
+    for c in out["channels"]:
+        click.echo(f"  {c['id']:<12} {c['center_hz'] / 1e6:12.4f} MHz  {c['bandwidth_hz'] / 1e3:9.1f} kHz  "
+                   f"confidence {c['confidence']:.4f}  nodes {c['nodes']}")
+
+
+@cli.command()
+@click.option("--duration", default=20.0, show_default=True, type=click.FloatRange(1, 3600),
+              help="Seconds of simulated network traffic.")
+@click.option("--seed", default=7, show_default=True, type=int)
+@click.option("--scenario", type=click.Path(exists=True, dir_okay=False),
+              help="A sim_nodes scenario file (default: the built-in demo site).")
+@click.option("--interval", default=2.0, show_default=True, type=click.FloatRange(0.5, 60),
+              help="Seconds between fusion epochs.")
+def demo(duration, seed, scenario, interval):
+    """All in one: temporary database, server on loopback, simulated nodes, live table, summary."""
+    from .demo import run_demo
+
+    code = run_demo(duration_s=duration, seed=seed, scenario_path=scenario, interval_s=interval)
+    sys.exit(code)
+
+
+def _optional_commands() -> None:
+    """Commands whose modules live beside the service (node agent, evaluation); absent ones are skipped."""
+    try:
+        from .agent import agent_command
+    except ImportError:
+        return
+    cli.add_command(agent_command, "agent")
+
+
+_optional_commands()
+
+
+def main() -> None:
+    cli(prog_name="occfuse")
+
+
+if __name__ == "__main__":
+    main()

@@ -319,7 +319,7 @@ class ReliabilityModel:
             n = n[:, None]  # (n_nodes,) means one value per node, as in rules.fuse
         n = np.broadcast_to(n, t.shape)
         if np.any(~(n > 0)):
-            raise ValueError(f"`n_samples` must be positive, was {n[~(n > 0)].flat[0]!r}")
+            raise ValueError(f"`n_samples` must be positive, was {n[~(n > 0)].flat[0].item()!r}")
         rts = np.asarray(report_time_s, dtype=float)
         if rts.shape != (n_nodes,):
             raise ValueError(f"`report_time_s` must have shape ({n_nodes},), was {rts.shape}")
@@ -335,7 +335,7 @@ class ReliabilityModel:
         with np.errstate(invalid="ignore"):
             bad = np.isfinite(p) & ~((p >= 0) & (p <= 1))
         if np.any(bad) or np.any(np.isinf(p)):
-            raise ValueError(f"`p_occupied` must lie in [0, 1], was {p[bad | np.isinf(p)][0]!r}")
+            raise ValueError(f"`p_occupied` must lie in [0, 1], was {p[bad | np.isinf(p)][0].item()!r}")
         power = None if power_dbm is None else np.asarray(power_dbm, dtype=float)
         if power is not None and power.shape != t.shape:
             raise ValueError(f"`power_dbm` must have shape {t.shape}, was {power.shape}")
@@ -347,7 +347,7 @@ class ReliabilityModel:
         lpf = np.broadcast_to(np.asarray(self.local_pf if local_pf is None else local_pf,
                                          dtype=float), (n_nodes,))
         if np.any(~((lpf > 0) & (lpf < 1))):
-            raise ValueError(f"`local_pf` must lie in (0, 1), was {lpf[~((lpf > 0) & (lpf < 1))][0]!r}")
+            raise ValueError(f"`local_pf` must lie in (0, 1), was {lpf[~((lpf > 0) & (lpf < 1))][0].item()!r}")
         if votes is None:
             with np.errstate(invalid="ignore"):
                 u = np.where(np.isfinite(t), t > energy.threshold(lpf[:, None], n), np.nan)
@@ -358,7 +358,7 @@ class ReliabilityModel:
             with np.errstate(invalid="ignore"):
                 bad = np.isfinite(u) & (u != 0) & (u != 1)
             if np.any(bad):
-                raise ValueError(f"`votes` must be 0, 1 or NaN, was {u[bad][0]!r}")
+                raise ValueError(f"`votes` must be 0, 1 or NaN, was {u[bad][0].item()!r}")
         if contribution is not None:
             contribution = np.asarray(contribution, dtype=float)
             if contribution.shape != t.shape:

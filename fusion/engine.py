@@ -98,6 +98,15 @@ def publish_states(p_occupied: np.ndarray, n_reporting: np.ndarray, *, confidenc
     return states
 
 
+def _row_nanmedian(a: np.ndarray) -> np.ndarray:
+    """Median of each row's non-NaN values; NaN for a row with none (without numpy's all-NaN warning)."""
+    out = np.full(a.shape[0], np.nan)
+    has = ~np.isnan(a).all(axis=1)
+    if has.any():
+        out[has] = np.nanmedian(a[has], axis=1)
+    return out
+
+
 def _load_state(session: Session, key: str) -> dict | None:
     row = session.get(FusionState, key)
     return row.value if row else None
@@ -148,10 +157,8 @@ def run_epoch(session: Session, now: datetime, config: Mapping[str, Any]) -> Epo
 
     # Noise: the report's own figure, else the node's learned floor (also replacing a drifting figure).
     model, rel_rows = _reliability(session, x.nodes, plan.revision, len(ids)) if n_nodes else (None, {})
-    with np.errstate(all="ignore"):
-        reported = np.nanmedian(np.where(np.isnan(x.noise_dbm), np.inf, x.noise_dbm), axis=1) if n_nodes else None
     if n_nodes:
-        reported = np.where(np.isfinite(reported), reported, np.nan)
+        reported = _row_nanmedian(x.noise_dbm)  # the node's own figure, one per node
         floor = model.noise_for(reported)
         replaced = ~(floor == reported)
         noise = np.where(np.isnan(x.noise_dbm) | replaced[:, None], floor[:, None], x.noise_dbm)

@@ -18,12 +18,19 @@ from datetime import datetime, timedelta
 
 import numpy as np
 
-__all__ = ["TruthWriter", "GroundTruth", "Score", "load_truth", "score_decisions", "parse_time"]
+__all__ = ["TruthWriter", "GroundTruth", "Score", "load_truth", "score_decisions", "parse_time", "format_time_query"]
 
 
 def parse_time(s):
     """An RFC 3339 string (``Z`` or an offset) as an aware datetime."""
     return datetime.fromisoformat(s.replace("Z", "+00:00"))
+
+
+def format_time_query(t):
+    """RFC 3339 in UTC with a ``Z``, safe in a query string (no ``+``)."""
+    from datetime import timezone
+
+    return t.astimezone(timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
 
 
 class TruthWriter:

@@ -163,9 +163,11 @@ def recording_reports(rec, plan, n_samples=65536, cal_db=0.0, *, first_seq=0, se
     per_bin = _bin_powers(x, segment)
     med = np.median(per_bin, axis=-1) / stats.gamma(dof_bin, scale=1 / dof_bin).median()
     noise_per_bin = float(np.median(med))
-    noise_dbm = 10 * np.log10(noise_per_bin * cp.n_bins) + cal_db
-    power_dbm = 10 * np.log10(np.maximum(cp.power, 1e-300)) + cal_db
-    dof = np.where(cp.in_span, np.rint(cp.dof), -1).astype(int)
+    # Channels outside the span have no bins: NaN, and make_report leaves them out.
+    noise_dbm = np.full(len(plan), np.nan)
+    noise_dbm[cp.in_span] = 10 * np.log10(noise_per_bin * cp.n_bins[cp.in_span]) + cal_db
+    power_dbm = np.where(cp.in_span, 10 * np.log10(np.maximum(np.nan_to_num(cp.power), 1e-300)) + cal_db, np.nan)
+    dof = np.where(cp.in_span, np.rint(np.nan_to_num(cp.dof, nan=-1.0)), -1).astype(int)
 
     if start is None:
         start = rec.start or datetime.now(timezone.utc) - timedelta(seconds=n_win * n_samples / rec.sample_rate)

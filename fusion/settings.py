@@ -57,9 +57,12 @@ def update_settings(session: Session, config: Mapping[str, Any], change: FusionS
     """Apply the fields present in `change`; the next epoch uses them (interval_s included)."""
     row = get_settings(session, config)
     values = settings_dict(row)
-    values.update(change.model_dump(exclude_unset=True))
-    if change.model_fields_set & {"k"} and change.k is None:
-        values["k"] = None
+    sent = change.model_dump(exclude_unset=True)
+    errors = [{"path": f, "message": "must not be null (leave the field out to keep its value)"}
+              for f, v in sent.items() if v is None and f != "k"]  # only k may be cleared
+    if errors:
+        raise Unprocessable("; ".join(f"{e['path']}: {e['message']}" for e in errors), errors=errors)
+    values.update(sent)
     errors = check_settings(values)
     if errors:
         raise Unprocessable("; ".join(f"{e['path']}: {e['message']}" for e in errors), errors=errors)

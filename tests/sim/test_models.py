@@ -116,3 +116,10 @@ class TestScenarioFiles:
                 "node": [{"name": "n1", "x_m": 0.0, "y_m": 0.0}], "transmitter": []}
         with pytest.raises(ValueError, match=message):
             parse_scenario({**base, **change})
+
+
+def test_exported_names():
+    import sim_nodes
+
+    assert set(sim_nodes.__all__) == {"DEMO_SCENARIO", "load_scenario", "run_scenario", "load_truth"}
+    assert sim_nodes.DEMO_SCENARIO.exists()

@@ -35,7 +35,7 @@ DEFAULTS: dict[str, Any] = {
     "LOG_LEVEL": "INFO",
     # initial fusion settings of a new database (see module docstring)
     "INTERVAL_S": 10.0,
-    "RULE": "k_of_n",
+    "RULE": "weighted_llr",  # see README, "Choosing a rule"
     "K": 2,
     "TARGET_PF": 0.01,
     "MIN_NODES": 2,

@@ -58,9 +58,9 @@ def test_history_rejects_since_after_until(net):
 
 def test_fusion_settings_defaults_and_put(client, admin):
     got = client.get("/api/v1/fusion").json
-    assert got["rule"] == "k_of_n" and got["k"] == 2
-    r = client.put("/api/v1/fusion", json={"rule": "weighted_llr", "confidence": 0.99}, headers=admin)
-    assert r.status_code == 200 and r.json["rule"] == "weighted_llr" and r.json["confidence"] == 0.99
+    assert got["rule"] == "weighted_llr" and got["k"] == 2  # the default for a new deployment
+    r = client.put("/api/v1/fusion", json={"rule": "majority", "confidence": 0.99}, headers=admin)
+    assert r.status_code == 200 and r.json["rule"] == "majority" and r.json["confidence"] == 0.99
     assert client.get("/api/v1/fusion").json["target_pf"] == got["target_pf"]  # untouched fields stay
 
 

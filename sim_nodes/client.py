@@ -1,7 +1,8 @@
 """Drive a live occfuse service with a simulated network, over real HTTP.
 
 :func:`run_scenario` puts the scenario's band plan (``PUT /api/v1/plan``), registers each node
-(``POST /api/v1/nodes``; a name that exists is reused by issuing it a new token), then runs
+(``POST /api/v1/nodes``; a name that exists is reused by issuing it a new token, and its
+seqs then start at the run's start time in Unix milliseconds), then runs
 simulated time: each node sweeps at its interval (staggered by a random phase) and posts
 the report with its next ``seq``.  Simulated ``t`` is stamped as the wall instant
 ``started_at + t / speedup``, so with ``--speedup 6`` a minute of scenario runs in ten
@@ -82,7 +83,10 @@ def _admin(token):
 
 
 def register_nodes(client, scenario, admin_token, *, put_plan=True):
-    """Put the plan and register (or reuse) every node; returns ``{name: token}``."""
+    """Put the plan and register (or reuse) every node.
+
+    Returns ``{name: (token, reused)}``; ``reused`` is True for a node that existed already.
+    """
     if put_plan:
         r = client.put("/api/v1/plan", json=scenario.plan_json(), headers=_admin(admin_token))
         if r.status_code != 200:
@@ -95,9 +99,11 @@ def register_nodes(client, scenario, admin_token, *, put_plan=True):
             r = client.post(f"/api/v1/nodes/{n.name}/token", headers=_admin(admin_token))
             if r.status_code != 200:
                 raise SetupError(f"new token for {n.name!r} answered {r.status_code}: {r.text[:300]}")
+            tokens[n.name] = (r.json()["token"], True)
         elif r.status_code != 201:
             raise SetupError(f"registering {n.name!r} answered {r.status_code}: {r.text[:300]}")
-        tokens[n.name] = r.json()["token"]
+        else:
+            tokens[n.name] = (r.json()["token"], False)
     return tokens
 
 
@@ -159,9 +165,14 @@ def run_scenario(scenario, server, admin_token, *, duration_s, speedup=1.0, seed
     counts = dict(made=0, delivered=0, duplicates=0, rejected=0, retries=0)
     try:
         tokens = register_nodes(client, scenario, admin_token, put_plan=put_plan)
-        nodes = [_Node(i, n.name, tokens[n.name], n.interval_s, float(phase_rng.uniform(0, n.interval_s)))
-                 for i, n in enumerate(scenario.nodes)]
         started_at = (now or (lambda: datetime.now(timezone.utc)))()
+        # A reused node has seqs from earlier runs that the API does not tell us; its seqs start at
+        # the run's start in Unix milliseconds, above any earlier run's (unless that one sent more
+        # than 1000 reports per wall second), so no report collides with an old one.
+        reuse_base = int(started_at.timestamp() * 1000)
+        nodes = [_Node(i, n.name, tokens[n.name][0], n.interval_s, float(phase_rng.uniform(0, n.interval_s)),
+                       seq=reuse_base if tokens[n.name][1] else 0)
+                 for i, n in enumerate(scenario.nodes)]
         mono0 = clock()
         writer = TruthWriter(truth_path, scenario.name, net.channel_ids, started_at, speedup) if truth_path else None
         changes = deque(net.change_times())

@@ -101,7 +101,10 @@ def test_existing_node_is_reused_with_a_new_token():
     svc, clock = FakeService(existing={"n1"}), FakeClock()
     run(svc, clock)
     assert ("POST", "/api/v1/nodes/n1/token") in svc.calls
-    assert any(n == "n1" for (n, _) in svc.stored)
+    # A reused node's seqs continue above any earlier run's: they start at the start time in Unix ms.
+    base = int(T0.timestamp() * 1000)
+    assert sorted(seq for (n, seq) in svc.stored if n == "n1") == list(range(base, base + 10))
+    assert sorted(seq for (n, seq) in svc.stored if n == "n0") == list(range(10))
 
 
 def test_retry_after_5xx_and_connection_error_resends_the_same_seq():

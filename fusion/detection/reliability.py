@@ -106,8 +106,11 @@ class ReliabilityModel:
         ``drift`` when the node's reported noise floor and the learned one differ by more.
     drift_trust : float
         Trust factor of a drifting node.
+    drift_min_j : float
+        A drifting node is also out of specification unless ``Pd - Pf >= drift_min_j``.
     learned_noise_on_drift : bool
-        :meth:`noise_for` substitutes the learned floor for a drifting node's own figure.
+        :meth:`noise_for` substitutes the learned floor for the own figure of a drifting node
+        that is not suspect.
     noise_window, noise_min_epochs : int
         The noise floor is the median of the last ``noise_window`` per-epoch estimates, given
         once at least ``noise_min_epochs`` exist.
@@ -165,7 +168,7 @@ class ReliabilityModel:
     def __init__(self, *, prior_pd=(4.0, 1.0), prior_pf=(1.0, 9.0), confidence_bar=0.9,
                  leave_one_out=True, memory=400.0, snr_memory=50.0, local_pf=0.1,
                  pf_margin=0.1, low_ratio=0.5, suspect_prob=0.99, clear_prob=0.5,
-                 suspect_trust=0.0, drift_margin_db=2.0, drift_trust=0.5,
+                 suspect_trust=0.0, drift_margin_db=2.0, drift_trust=0.5, drift_min_j=0.05,
                  learned_noise_on_drift=True, noise_window=21, noise_min_epochs=5,
                  stuck_epochs=3, channel_shrinkage=20.0, ci_level=0.95):
         self.prior_pd = prior_pd
@@ -182,6 +185,7 @@ class ReliabilityModel:
         self.suspect_trust = suspect_trust
         self.drift_margin_db = drift_margin_db
         self.drift_trust = drift_trust
+        self.drift_min_j = drift_min_j
         self.learned_noise_on_drift = learned_noise_on_drift
         self.noise_window = noise_window
         self.noise_min_epochs = noise_min_epochs
@@ -207,7 +211,7 @@ class ReliabilityModel:
             v = getattr(self, name)
             if not 0 < v < 1:
                 raise ValueError(f"`{name}` must lie in (0, 1), was {v!r}")
-        for name in ("suspect_trust", "drift_trust"):
+        for name in ("suspect_trust", "drift_trust", "drift_min_j"):
             v = getattr(self, name)
             if not 0 <= v <= 1:
                 raise ValueError(f"`{name}` must lie in [0, 1], was {v!r}")
@@ -364,7 +368,7 @@ class ReliabilityModel:
             if contribution.shape != t.shape:
                 raise ValueError(f"`contribution` must have shape {t.shape}, was {contribution.shape}")
         if pinned is not None:
-            self._set_pins(pinned)
+            self.set_pins(pinned)
 
         # Which reports are new and fresh: each report is learned from exactly once.
         with np.errstate(invalid="ignore"):
@@ -450,7 +454,9 @@ class ReliabilityModel:
         self.stuck_run_ = np.where(fresh, np.where(same, self.stuck_run_ + 1, 0), self.stuck_run_)
         self.last_power_ = np.where(fresh[:, None], values, self.last_power_)
 
-    def _set_pins(self, pinned):
+    def set_pins(self, pinned):
+        """Admin pins per node: "trusted" (trust 1), "excluded" (trust 0) or None; returns self."""
+        # Input validation
         pins = list(pinned)
         if len(pins) != self.n_nodes_:
             raise ValueError(f"`pinned` must have {self.n_nodes_} entries, was {len(pins)}")
@@ -458,6 +464,9 @@ class ReliabilityModel:
             if v is not None and v not in PINS:
                 raise ValueError(f"`pinned` entries must be one of {PINS + (None,)}, was {v!r}")
         self.pinned_ = pins
+        if hasattr(self, "trust_"):
+            self._refresh()
+        return self
 
     # -- derived estimates ----------------------------------------------------------------
 
@@ -481,20 +490,27 @@ class ReliabilityModel:
         floor, count = _nanmedian_rows(self.noise_history_)
         self.noise_dbm_ = np.where(count >= self.noise_min_epochs, floor, np.nan)
 
+        with np.errstate(invalid="ignore"):
+            silent = ~(self.now_s_ - self.last_seen_s_ <= self.max_age_s_)
+            drift = np.abs(self.noise_reported_dbm_ - self.noise_dbm_) > self.drift_margin_db
+
         # Out of specification: Pf outside [low * local_pf, local_pf + margin], or Pd below
         # low * local_pf (an energy detector's Pd never falls below its Pf).
         low = self.low_ratio * self.local_pf_
         high = np.minimum(self.local_pf_ + self.pf_margin, 1.0)
         p_ok = ((special.betainc(*post_f, high) - special.betainc(*post_f, low))
                 * special.betainc(post_d[1], post_d[0], 1.0 - low))
+        # A drifting node must also stay informative, Pd - Pf >= drift_min_j (normal
+        # approximation to the difference of the two Beta posteriors, common practice):
+        # re-normalising a node that only adds an offset to every power (always "occupied")
+        # by its learned floor leaves noise with Pd = Pf, which must not pass as honest.
+        gap = (self.pd_ - self.pf_ - self.drift_min_j) / np.hypot(self.pd_std_, self.pf_std_)
+        p_ok = p_ok * np.where(drift, special.ndtr(gap), 1.0)
         self.p_violation_ = 1.0 - p_ok
         raise_ = self.p_violation_ >= self.suspect_prob
         keep = (self.suspect_ > 0) & (self.p_violation_ >= self.clear_prob)
         self.suspect_ = (raise_ | keep).astype(float)
 
-        with np.errstate(invalid="ignore"):
-            silent = ~(self.now_s_ - self.last_seen_s_ <= self.max_age_s_)
-            drift = np.abs(self.noise_reported_dbm_ - self.noise_dbm_) > self.drift_margin_db
         stuck = self.stuck_run_ >= self.stuck_epochs
         suspect = self.suspect_ > 0
         trust = np.where(suspect, np.minimum(p_ok, self.suspect_trust), p_ok)
@@ -517,8 +533,8 @@ class ReliabilityModel:
         Returns
         -------
         ndarray, shape (n_nodes,)
-            dBm; the learned floor fills NaN (and replaces a drifting node's figure when
-            ``learned_noise_on_drift``); NaN where neither is known.
+            dBm; the learned floor fills NaN (and replaces the figure of a drifting node
+            that is not suspect, when ``learned_noise_on_drift``); NaN where neither is known.
         """
         # Input validation
         rep = np.asarray(noise_dbm_reported, dtype=float)
@@ -528,8 +544,12 @@ class ReliabilityModel:
 
         use_learned = ~np.isfinite(rep)
         if self.learned_noise_on_drift:
+            # Never repair a suspect node: a liar that adds an offset to every power would
+            # turn into plausible noise.  A node found drifting before it turned suspect
+            # (a slow drift) is repaired.
             with np.errstate(invalid="ignore"):
-                use_learned |= np.abs(rep - self.noise_dbm_) > self.drift_margin_db
+                use_learned |= ((np.abs(rep - self.noise_dbm_) > self.drift_margin_db)
+                                & ~(self.suspect_ > 0))
         return np.where(use_learned & np.isfinite(self.noise_dbm_), self.noise_dbm_,
                         np.where(use_learned, np.nan, rep))
 

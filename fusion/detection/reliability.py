@@ -350,8 +350,9 @@ class ReliabilityModel:
                              f"was {noise_rep.shape}")
         lpf = np.broadcast_to(np.asarray(self.local_pf if local_pf is None else local_pf,
                                          dtype=float), (n_nodes,))
-        if np.any(~((lpf > 0) & (lpf < 1))):
-            raise ValueError(f"`local_pf` must lie in (0, 1), was {lpf[~((lpf > 0) & (lpf < 1))][0].item()!r}")
+        bad = ~((lpf > 0) & (lpf < 1))
+        if np.any(bad):
+            raise ValueError(f"`local_pf` must lie in (0, 1), was {lpf[bad][0].item()!r}")
         if votes is None:
             with np.errstate(invalid="ignore"):
                 u = np.where(np.isfinite(t), t > energy.threshold(lpf[:, None], n), np.nan)

@@ -210,6 +210,18 @@ class TestNoiseFloor:
         keep.__dict__.update({k: v for k, v in model.__dict__.items() if k.endswith("_")})
         assert keep.noise_for(np.array([-100.0, -97.0]))[0] == -100.0
 
+    def test_a_suspect_node_is_not_repaired_by_the_learned_floor(self):
+        # Node 0 reports 3 dB too high everywhere and votes 1 on every free channel: it is
+        # suspect first, so noise_for keeps its own figure (an offset liar stays visible).
+        rng = np.random.default_rng(6)
+        model = ReliabilityModel(noise_window=9)
+        for epoch in range(12):
+            power = -97 + 10 * np.log10(rng.gamma(N, 1.0, size=(2, 8)) / N)
+            votes = np.vstack([np.ones(8), in_spec(epoch, 1)])
+            feed(model, votes, np.full(8, 0.01), epoch=epoch, power=power, noise=[-100.0, -97.0])
+        assert model.flags_ == [["suspect", "drift"], []]
+        assert model.noise_for(np.array([-100.0, -97.0]))[0] == -100.0
+
     def test_no_learning_from_unlabelled_channels(self):
         model = ReliabilityModel()
         for epoch in range(10):

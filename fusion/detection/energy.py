@@ -35,7 +35,7 @@ def _check_positive(name, value):
     with np.errstate(invalid="ignore"):
         bad = ~np.isnan(arr) & ~(arr > 0)
     if np.any(bad):
-        raise ValueError(f"`{name}` must be positive, was {arr[bad].flat[0]!r}")
+        raise ValueError(f"`{name}` must be positive, was {arr[bad].flat[0].item()!r}")
     return arr
 
 
@@ -44,7 +44,7 @@ def _check_open_unit(name, value):
     with np.errstate(invalid="ignore"):
         bad = ~np.isnan(arr) & ~((arr > 0) & (arr < 1))
     if np.any(bad):
-        raise ValueError(f"`{name}` must lie in (0, 1), was {arr[bad].flat[0]!r}")
+        raise ValueError(f"`{name}` must lie in (0, 1), was {arr[bad].flat[0].item()!r}")
     return arr
 
 
@@ -53,7 +53,7 @@ def _check_nonnegative(name, value):
     with np.errstate(invalid="ignore"):
         bad = ~np.isnan(arr) & ~(arr >= 0)
     if np.any(bad):
-        raise ValueError(f"`{name}` must be non-negative, was {arr[bad].flat[0]!r}")
+        raise ValueError(f"`{name}` must be non-negative, was {arr[bad].flat[0].item()!r}")
     return arr
 
 
@@ -195,7 +195,14 @@ def detection_awgn(tau, n_samples, snr):
     snr = _check_nonnegative("snr", snr)
     tau = np.asarray(tau, dtype=float)
 
-    return stats.ncx2.sf(2.0 * np.maximum(tau, 0.0), 2.0 * n, 2.0 * n * snr)
+    tau, n, snr = np.broadcast_arrays(np.maximum(tau, 0.0), n, snr)
+    # ncx2 is stochastically larger than chi2 with the same dof, so Pd >= Pf; where Pf is
+    # 1 to double precision so is Pd.  (This also sidesteps a boost overflow at x ~ 0.)
+    sure = special.gammainc(n, tau) < 1e-17
+    out = np.ones(tau.shape)
+    if np.any(~sure):
+        out[~sure] = stats.ncx2.sf(2.0 * tau[~sure], 2.0 * n[~sure], 2.0 * n[~sure] * snr[~sure])
+    return out[()] if out.ndim == 0 else out
 
 
 def detection_gaussian(tau, n_samples, snr):
@@ -226,24 +233,30 @@ def detection_gaussian(tau, n_samples, snr):
     return special.gammaincc(n, np.maximum(tau, 0.0) / (1.0 + snr))
 
 
-def _nb_series(tau, n, mean_total_snr, m, tol=1e-14, max_terms=100_000):
+def _nb_series(tau, n, mean_total_snr, m, tol=1e-14, block=256):
     """Pd averaged over Gamma(m, mean/m) total SNR: sum_j NB(j; m, p) gammaincc(N + j, tau).
 
     Derived from the Poisson mixture of ncx2 (METHODS.md section 2); exact for any m > 0.
+    Terms are summed in blocks of j.  Once ``N + j`` is far above ``tau``, every later
+    ``gammaincc`` is 1 to double precision, so the rest of the sum is the negative-binomial
+    tail mass ``nbinom.sf``, added in closed form.
     """
     tau, n, g, m = np.broadcast_arrays(*(np.asarray(a, dtype=float) for a in (tau, n, mean_total_snr, m)))
+    shape = tau.shape
+    tau, n, g, m = (a.ravel() for a in (tau, n, g, m))
     p = m / (m + g)
     out = np.zeros(tau.shape)
-    mass = np.zeros(tau.shape)
-    j = 0
-    # Terms are a pmf times a probability, so 1 - (mass so far) bounds the tail.
+    j0 = 0
     while True:
-        w = stats.nbinom.pmf(j, m, p)
-        out += w * special.gammaincc(n + j, tau)
-        mass += w
-        j += 1
-        if np.all(1.0 - mass < tol) or j >= max_terms:
-            return np.clip(out, 0.0, 1.0)
+        j = np.arange(j0, j0 + block)[:, None]
+        out += np.sum(stats.nbinom.pmf(j, m, p) * special.gammaincc(n + j, tau), axis=0)
+        j0 += block
+        # gammaincc(a, x) > 1 - 1e-16 once a > x + 10 sqrt(a) + 40 (a Gaussian tail of 10 sd).
+        saturated = n + j0 > tau + 10.0 * np.sqrt(n + j0) + 40.0
+        tail = stats.nbinom.sf(j0 - 1, m, p)
+        if np.all(saturated | (tail < tol)):
+            out += np.where(saturated, tail, 0.0)
+            return np.clip(out, 0.0, 1.0).reshape(shape)
 
 
 def detection_rayleigh(tau, n_samples, snr):
@@ -344,7 +357,7 @@ def detection_nakagami(tau, n_samples, snr, m):
     snr = _check_nonnegative("snr", snr)
     m_arr = np.asarray(m, dtype=float)
     if np.any(~(m_arr >= 0.5)):
-        raise ValueError(f"`m` must be at least 0.5, was {m_arr[~(m_arr >= 0.5)].flat[0]!r}")
+        raise ValueError(f"`m` must be at least 0.5, was {m_arr[~(m_arr >= 0.5)].flat[0].item()!r}")
     tau = np.maximum(np.asarray(tau, dtype=float), 0.0)
 
     return _nb_series(tau, n, n * snr, m_arr)

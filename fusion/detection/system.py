@@ -57,7 +57,7 @@ def _unit(name, value, open_=False):
     ok = (arr > 0) & (arr < 1) if open_ else (arr >= 0) & (arr <= 1)
     if np.any(~ok):
         interval = "(0, 1)" if open_ else "[0, 1]"
-        raise ValueError(f"`{name}` must lie in {interval}, was {arr[~ok].flat[0]!r}")
+        raise ValueError(f"`{name}` must lie in {interval}, was {arr[~ok].flat[0].item()!r}")
     return arr
 
 
@@ -123,7 +123,7 @@ def k_of_n_probability(p, k):
     k = np.asarray(k)
     n = p.shape[0] if p.ndim else 0
     if np.any((k < 1) | (k > n)):
-        raise ValueError(f"`k` must lie in [1, {n}], was {k.flat[np.argmax((k < 1) | (k > n))]!r}")
+        raise ValueError(f"`k` must lie in [1, {n}], was {k.flat[np.argmax((k < 1) | (k > n))].item()!r}")
 
     pmf = poisson_binomial_pmf(p)
     tail = np.cumsum(pmf[::-1], axis=0)[::-1]  # tail[l] = P(count >= l)
@@ -495,7 +495,10 @@ def clipped_llr_cumulants(n_samples, snr, trust=1.0, clip=np.inf, *, hypothesis=
     y = np.clip(alpha[..., None] * x - beta[..., None], -c[..., None], c[..., None])
     m = []
     for r in (1, 2, 3):
-        m.append(low_value**r * f_lo + c**r * s_hi + np.sum(wts * y**r, axis=-1))
+        # An infinite clip has no atoms: skip them rather than form inf * 0.
+        with np.errstate(invalid="ignore"):
+            atoms = np.where(f_lo > 0, low_value**r * f_lo, 0.0) + np.where(s_hi > 0, c**r * s_hi, 0.0)
+        m.append(atoms + np.sum(wts * y**r, axis=-1))
     m1, m2, m3 = m
     k2 = np.maximum(m2 - m1**2, 0.0)
     k3 = m3 - 3 * m1 * m2 + 2 * m1**3

@@ -165,8 +165,6 @@ def run_epoch(session: Session, now: datetime, config: Mapping[str, Any]) -> Epo
         t = energy.normalise(x.power_dbm, noise, x.n_samples)
         pins = np.array([rel_rows[n.id].pinned for n in x.nodes], dtype=object)
         node_trust = np.where(pins == "trusted", 1.0, np.where(pins == "excluded", 0.0, model.trust_))
-        # Nodes pinned excluded or judged suspect (trust 0) count for no rule; their reports stay stored.
-        t[node_trust <= 0.0, :] = np.nan
         t[~np.isfinite(t)] = np.nan
     else:
         t = np.full((0, len(ids)), np.nan)
@@ -182,6 +180,10 @@ def run_epoch(session: Session, now: datetime, config: Mapping[str, Any]) -> Epo
     k = fs.k
     rows_needed = max(n_nodes, k or 1, 1)  # rules need k <= rows; absent nodes are rows of NaN
     t_in = np.vstack([t, np.full((rows_needed - n_nodes, len(ids)), np.nan)])
+    if n_nodes:
+        # Nodes pinned excluded or judged suspect (trust 0) count for no rule. The learner still sees their
+        # reports (below), so a node that mends its ways can earn its trust back; the reports stay stored.
+        t_in[:n_nodes][node_trust <= 0.0, :] = np.nan
     n_in = np.vstack([x.n_samples, np.ones((rows_needed - n_nodes, len(ids)))])
     snr = np.full(t_in.shape, design_snr)
     trust = np.ones(rows_needed)
@@ -196,9 +198,10 @@ def run_epoch(session: Session, now: datetime, config: Mapping[str, Any]) -> Epo
     _save_state(session, "tracker", {"revision": plan.revision, "state": _json_arrays(tracker.get_state())})
 
     if n_nodes:
-        decided = np.where(states == "occupied", 1.0, np.where(states == "free", 0.0, np.nan))
+        # Labels come from the posterior with each node's own contribution removed (leave-one-out inside the
+        # model); also requiring the published state was measured to bias every node's Pf low.
         model.update(t=t, n_samples=x.n_samples, report_time_s=x.report_time_s, now_s=now.timestamp(),
-                     max_age_s=fs.max_age_s, decision=decided, p_occupied=p, power_dbm=x.power_dbm,
+                     max_age_s=fs.max_age_s, p_occupied=p, power_dbm=x.power_dbm,
                      noise_dbm_reported=reported, pinned=list(pins))
         state = model.get_state()
         for i, node in enumerate(x.nodes):

@@ -3,10 +3,10 @@
 from __future__ import annotations
 
 from flask import Blueprint
-from sqlalchemy import select
+from sqlalchemy import func, select
 
 from ..db import get_session
-from ..models import Node, NodeReliability
+from ..models import Node, NodeReliability, Report
 from ..registry import node_by_name, register_node, rotate_token
 from .auth import role
 from .problems import read_body, respond
@@ -17,7 +17,7 @@ __all__ = ["bp", "node_view"]
 bp = Blueprint("nodes", __name__, url_prefix="/api/v1/nodes")
 
 
-def node_view(node: Node, rel: NodeReliability | None) -> dict:
+def node_view(node: Node, rel: NodeReliability | None, last_seq: int | None = None) -> dict:
     def mean(a, b):
         return a / (a + b) if rel is not None and (a + b) > 0 else None
 
@@ -26,7 +26,11 @@ def node_view(node: Node, rel: NodeReliability | None) -> dict:
             "trust": rel.trust if rel else None,
             "pd": mean(rel.pd_a, rel.pd_b) if rel else None, "pf": mean(rel.pf_a, rel.pf_b) if rel else None,
             "noise_dbm": rel.noise_dbm if rel else None, "flags": list(rel.flags or []) if rel else [],
-            "pinned": rel.pinned if rel else None}
+            "pinned": rel.pinned if rel else None, "last_seq": last_seq}
+
+
+def _last_seqs(session) -> dict[int, int]:
+    return dict(session.execute(select(Report.node_id, func.max(Report.seq)).group_by(Report.node_id)).all())
 
 
 @bp.post("")
@@ -44,7 +48,8 @@ def create():
 def list_nodes():
     session = get_session()
     rows = session.execute(select(Node, NodeReliability).outerjoin(NodeReliability).order_by(Node.name)).all()
-    return respond(NodeList, {"nodes": [node_view(n, r) for n, r in rows]})
+    seqs = _last_seqs(session)
+    return respond(NodeList, {"nodes": [node_view(n, r, seqs.get(n.id)) for n, r in rows]})
 
 
 @bp.get("/<name>")
@@ -52,7 +57,8 @@ def list_nodes():
 def show(name: str):
     session = get_session()
     node = node_by_name(session, name)
-    return respond(NodeOut, node_view(node, session.get(NodeReliability, node.id)))
+    last = session.scalar(select(func.max(Report.seq)).where(Report.node_id == node.id))
+    return respond(NodeOut, node_view(node, session.get(NodeReliability, node.id), last))
 
 
 @bp.patch("/<name>")

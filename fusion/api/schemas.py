@@ -76,6 +76,7 @@ class NodeOut(_Out):
     noise_dbm: float | None
     flags: list[str]
     pinned: str | None
+    last_seq: int | None = Field(default=None, description="Highest report seq stored for the node.")
 
 
 class NodeList(_Out):

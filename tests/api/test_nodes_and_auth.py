@@ -93,6 +93,9 @@ def test_node_detail_and_404(net):
     r = net.client.get("/api/v1/nodes/roof-a")
     assert r.status_code == 200
     assert set(r.json) >= {"trust", "pd", "pf", "noise_dbm", "flags", "last_seen"}
+    assert r.json["last_seq"] is None
+    net.post("roof-a", net.report("roof-a", {"ch0": -90.0}, seq=17))
+    assert net.client.get("/api/v1/nodes/roof-a").json["last_seq"] == 17
     assert net.client.get("/api/v1/nodes/nobody").status_code == 404
 
 

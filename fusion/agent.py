@@ -27,7 +27,6 @@ from __future__ import annotations
 import json
 import sys
 import time
-import tomllib
 from dataclasses import dataclass
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
@@ -100,12 +99,14 @@ def make_report(seq, measured_at, n_samples, channel_ids, power_dbm, noise_dbm=N
 
 def load_plan(path):
     """Channels of a plan TOML file (``[[channel]]`` tables with id, center_hz, bandwidth_hz)."""
-    with open(path, "rb") as fh:
-        data = tomllib.load(fh)
-    chans = [PlanChannel(str(c["id"]), float(c["center_hz"]), float(c["bandwidth_hz"])) for c in data.get("channel", [])]
-    if not chans:
-        raise click.BadParameter(f"{path} has no [[channel]] tables")
-    return chans
+    from .errors import PlanError
+    from .plan import read_plan_file  # the service's own parser and checks, so both sides read plans alike
+
+    try:
+        plan = read_plan_file(path)
+    except PlanError as exc:
+        raise click.BadParameter(str(exc)) from None
+    return [PlanChannel(c.id, c.center_hz, c.bandwidth_hz) for c in plan.channels]
 
 
 def read_recording(path, sample_rate=None, center_hz=None, start=None):

@@ -1,8 +1,17 @@
-"""Shared fixtures: a fresh app on a temporary SQLite file, its client, and small helpers for nodes and reports."""
+"""Shared fixtures: a fresh app on a temporary SQLite file (and PostgreSQL when configured), its client, and
+small helpers for nodes and reports.
+
+``db_url`` is parametrized over backends. The PostgreSQL variant runs when ``OCCFUSE_TEST_POSTGRES_URL`` is set
+(e.g. ``postgresql+psycopg://postgres@127.0.0.1:5432/test``); each test gets its own fresh schema, selected
+through the connection's ``search_path``, and the schema is dropped afterwards.
+"""
 
 from __future__ import annotations
 
+import os
+import uuid
 from datetime import datetime, timedelta, timezone
+from urllib.parse import quote
 
 import numpy as np
 import pytest
@@ -14,18 +23,71 @@ ADMIN = "admin-secret-for-tests"
 PLAN = {"channels": [{"id": f"ch{j}", "center_hz": 470e6 + 8e6 * j, "bandwidth_hz": 6e6} for j in range(4)]}
 
 
-@pytest.fixture
-def db_url(tmp_path):
-    url = f"sqlite:///{tmp_path / 'occfuse.db'}"
-    upgrade(url)
-    return url
+PG_ENV = "OCCFUSE_TEST_POSTGRES_URL"
+
+
+def _pg_schema_url(base: str):
+    """A fresh schema on the server at `base`; returns (url whose search_path is that schema, drop function)."""
+    from sqlalchemy import create_engine, text
+
+    schema = f"t_{uuid.uuid4().hex[:12]}"
+    admin = create_engine(base, isolation_level="AUTOCOMMIT")
+    try:
+        with admin.connect() as conn:
+            conn.execute(text(f'CREATE SCHEMA "{schema}"'))
+    except Exception as exc:
+        admin.dispose()
+        if os.environ.get("CI") == "true":
+            raise
+        pytest.skip(f"PostgreSQL at {PG_ENV} is unreachable: {type(exc).__name__}")
+    sep = "&" if "?" in base else "?"
+    url = f"{base}{sep}options={quote(f'-csearch_path={schema}')}"
+
+    def drop():
+        with admin.connect() as conn:
+            conn.execute(text(f'DROP SCHEMA "{schema}" CASCADE'))
+        admin.dispose()
+
+    return url, drop
+
+
+@pytest.fixture(params=["sqlite", "postgresql"])
+def db_url(request, tmp_path):
+    """A database upgraded to the newest migration: a temp SQLite file, or a fresh PostgreSQL schema."""
+    if request.param == "sqlite":
+        url = f"sqlite:///{tmp_path / 'occfuse.db'}"
+        upgrade(url)
+        yield url
+        return
+    base = os.environ.get(PG_ENV)
+    if not base:
+        pytest.skip(f"PostgreSQL variant: set {PG_ENV}=postgresql+psycopg://USER@HOST:PORT/DB to run it")
+    url, drop = _pg_schema_url(base)
+    try:
+        upgrade(url)
+        yield url
+    finally:
+        drop()
 
 
 @pytest.fixture
-def app(db_url):
-    app = create_app({"DATABASE_URL": db_url, "ADMIN_TOKEN": ADMIN, "TESTING": True})
-    yield app
-    app.extensions["occfuse.engine"].dispose()
+def make_app(db_url):
+    """Build apps on `db_url` with extra config; their engines are disposed at teardown (no leaked connections)."""
+    made = []
+
+    def make(**config):
+        app = create_app({"DATABASE_URL": db_url, "ADMIN_TOKEN": ADMIN, "TESTING": True, **config})
+        made.append(app)
+        return app
+
+    yield make
+    for app in made:
+        app.extensions["occfuse.engine"].dispose()
+
+
+@pytest.fixture
+def app(make_app):
+    return make_app()
 
 
 @pytest.fixture

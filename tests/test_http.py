@@ -8,16 +8,14 @@ import httpx
 import numpy as np
 import pytest
 
-from fusion import create_app
 from fusion.server import LiveServer
 from tests.conftest import ADMIN, PLAN, energy_dbm, now_utc
 
 pytestmark = pytest.mark.http
 
 
-def test_nodes_post_over_http_and_the_scheduled_epochs_publish(db_url):
-    app = create_app({"DATABASE_URL": db_url, "ADMIN_TOKEN": ADMIN, "INTERVAL_S": 0.5, "RULE": "egc",
-                      "MIN_NODES": 2})
+def test_nodes_post_over_http_and_the_scheduled_epochs_publish(make_app):
+    app = make_app(TESTING=False, INTERVAL_S=0.5, RULE="egc", MIN_NODES=2)
     admin = {"Authorization": f"Bearer {ADMIN}"}
     rng = np.random.default_rng(21)
     with LiveServer(app, "127.0.0.1", 0) as server, httpx.Client(base_url=server.url, timeout=10) as http:

@@ -9,9 +9,8 @@ from fusion.db import alembic_config, current_revision, head_revision, make_engi
 from fusion.models import Base
 
 
-def test_models_match_migrations(tmp_path):
-    url = f"sqlite:///{tmp_path / 'm.db'}"
-    upgrade(url)
+def test_models_match_migrations(db_url):
+    url = db_url  # already upgraded to head by the fixture (SQLite file or fresh PostgreSQL schema)
     cfg = alembic_config(url)
     engine = make_engine(url)
     with engine.begin() as conn:
@@ -22,9 +21,8 @@ def test_models_match_migrations(tmp_path):
     engine.dispose()
 
 
-def test_downgrade_to_base_and_upgrade_again(tmp_path):
-    url = f"sqlite:///{tmp_path / 'm.db'}"
-    upgrade(url)
+def test_downgrade_to_base_and_upgrade_again(db_url):
+    url = db_url
     cfg = alembic_config(url)
     engine = make_engine(url, foreign_keys=False)
     with engine.begin() as conn:
@@ -34,4 +32,6 @@ def test_downgrade_to_base_and_upgrade_again(tmp_path):
     assert "report" not in inspect(engine).get_table_names()
     engine.dispose()
     upgrade(url)
-    assert current_revision(make_engine(url)) == head_revision(url)
+    engine = make_engine(url)
+    assert current_revision(engine) == head_revision(url)
+    engine.dispose()

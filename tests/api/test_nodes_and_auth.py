@@ -7,7 +7,6 @@ import logging
 import pytest
 from sqlalchemy import select
 
-from fusion import create_app
 from fusion.models import Node
 from fusion.registry import hash_token
 from tests.conftest import ADMIN
@@ -63,8 +62,8 @@ def test_scheme_is_case_insensitive(client):
                        headers={"Authorization": f"bearer {ADMIN}"}).status_code == 201
 
 
-def test_without_a_configured_admin_token_admin_routes_are_refused(db_url):
-    app = create_app({"DATABASE_URL": db_url, "ADMIN_TOKEN": None})
+def test_without_a_configured_admin_token_admin_routes_are_refused(make_app):
+    app = make_app(ADMIN_TOKEN=None)
     r = app.test_client().post("/api/v1/nodes", json={"name": "x"}, headers={"Authorization": "Bearer anything"})
     assert r.status_code == 403 and "OCCFUSE_ADMIN_TOKEN" in r.json["detail"]
 
@@ -79,8 +78,8 @@ def test_rotating_a_token_revokes_the_old_one(net):
     assert ok.status_code == 201
 
 
-def test_read_token_when_configured_guards_reads(db_url):
-    app = create_app({"DATABASE_URL": db_url, "ADMIN_TOKEN": ADMIN, "READ_TOKEN": "reader"})
+def test_read_token_when_configured_guards_reads(make_app):
+    app = make_app(READ_TOKEN="reader")
     c = app.test_client()
     assert c.get("/api/v1/channels").status_code == 401
     assert c.get("/api/v1/channels", headers={"Authorization": "Bearer reader"}).status_code == 200

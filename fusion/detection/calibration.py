@@ -81,7 +81,7 @@ def calibration(p, truth, n_bins=10):
         raise ValueError(f"`n_bins` must be a positive integer, was {n_bins!r}")
     seen = ~np.isnan(p)
     if np.any(seen & ~((p >= 0) & (p <= 1))):
-        raise ValueError(f"`p` must lie in [0, 1] or be NaN, was {p[seen & ~((p >= 0) & (p <= 1))][0]!r}")
+        raise ValueError(f"`p` must lie in [0, 1] or be NaN, was {p[seen & ~((p >= 0) & (p <= 1))][0].item()!r}")
     if not np.all(np.isin(truth, (0, 1))):
         raise ValueError("`truth` must hold only 0/1 or booleans")
 

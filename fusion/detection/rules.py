@@ -87,7 +87,7 @@ def _node_param(name, value, shape, low=None, high=None):
         bad |= ~(arr <= high)
     if np.any(bad):
         rng = f"[{low}, {high}]" if high is not None else f">= {low}"
-        raise ValueError(f"`{name}` must be finite and {rng}, was {arr[bad].flat[0]!r}")
+        raise ValueError(f"`{name}` must be finite and {rng}, was {arr[bad].flat[0].item()!r}")
     return arr
 
 
@@ -223,14 +223,14 @@ def fuse(t, n_samples, *, rule, target_pf, k=None, snr=None, pd=None, pf=None, t
         raise ValueError(f"`t` must have shape (n_nodes, n_channels), was shape {t.shape}")
     mask = ~np.isnan(t)
     if np.any(mask & ~((t >= 0) & np.isfinite(t))):
-        raise ValueError(f"`t` must be finite and >= 0 or NaN, was {t[mask & ~(t >= 0) | np.isinf(t)].flat[0]!r}")
+        raise ValueError(f"`t` must be finite and >= 0 or NaN, was {t[mask & ~(t >= 0) | np.isinf(t)].flat[0].item()!r}")
     shape = t.shape
     target_pf = float(target_pf)
     if not 0.0 < target_pf < 1.0:
         raise ValueError(f"`target_pf` must lie in (0, 1), was {target_pf!r}")
     n = _node_param("n_samples", n_samples, shape)
     if np.any(~(n > 0)):
-        raise ValueError(f"`n_samples` must be positive, was {n[~(n > 0)].flat[0]!r}")
+        raise ValueError(f"`n_samples` must be positive, was {n[~(n > 0)].flat[0].item()!r}")
     if rule == "k_of_n":
         if k is None or int(k) != k or not 1 <= k <= shape[0]:
             raise ValueError(f"`k` must be an integer in [1, {shape[0]}] for rule 'k_of_n', was {k!r}")
@@ -246,7 +246,7 @@ def fuse(t, n_samples, *, rule, target_pf, k=None, snr=None, pd=None, pf=None, t
     if prior.ndim > 1 or (prior.ndim == 1 and prior.shape[0] != shape[1]):
         raise ValueError(f"`prior` must be a scalar or shape ({shape[1]},), was shape {prior.shape}")
     if np.any(~((prior > 0) & (prior < 1))):
-        raise ValueError(f"`prior` must lie in (0, 1), was {prior[~((prior > 0) & (prior < 1))].flat[0]!r}")
+        raise ValueError(f"`prior` must lie in (0, 1), was {prior[~((prior > 0) & (prior < 1))].flat[0].item()!r}")
     clip = float(clip)
     if not clip > 0:
         raise ValueError(f"`clip` must be positive, was {clip!r}")
@@ -311,7 +311,7 @@ def _fuse_hard(t, mask, n, rule, target_pf, k, snr, pd, pf):
         votes = mask & (special.gammaincc(n, np.where(mask, t, 0.0)) < p_loc)
     p_nom = np.where(np.isnan(p_loc), target_pf, p_loc)
     pf_m = np.broadcast_to(p_nom if pf is None else pf, t.shape)
-    if pd is None and n.shape[-1] == 1 and (snr.ndim < 2 or snr.shape[-1] == 1):
+    if pd is None and (n.ndim < 2 or n.shape[-1] == 1) and (snr.ndim < 2 or snr.shape[-1] == 1):
         # The nominal Pf depends only on the count of reporters: one ncx2 call per count.
         counts, first, inv = np.unique(n_rep, return_index=True, return_inverse=True)
         p_u = p_nom[first]

@@ -25,6 +25,8 @@ DEFAULTS: dict[str, Any] = {
     "ADMIN_TOKEN": None,  # admin routes are refused until one is set
     "READ_TOKEN": None,  # when set, reads need it (or the admin token) too
     "SQLITE_SYNCHRONOUS": "NORMAL",  # FULL survives power loss, NORMAL survives process death
+    "SQLITE_BUSY_TIMEOUT_S": 5.0,  # how long a write waits for another writer's lock before a 503
+    "RETRY_AFTER_S": 1,  # the Retry-After of a 503 (database busy)
     # ingest limits
     "MAX_CONTENT_LENGTH": 1_048_576,  # bytes per request body
     "MAX_BATCH": 500,  # reports per batch

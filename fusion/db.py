@@ -1,8 +1,10 @@
 """Database engine and sessions, SQLite pragmas, and the migration runner.
 
 SQLite notes (see DEVELOPERS.md): write transactions start with ``BEGIN IMMEDIATE`` so a read-then-write
-transaction never fails with "database is locked" when another writer commits first; WAL mode lets readers
-run during writes; foreign keys are switched on per connection. Python 3.11's sqlite3 has no ``autocommit``
+transaction never fails with "database is locked" when another writer commits first; read-only requests (GET)
+use ``BEGIN DEFERRED`` sessions, so they never queue behind a writer (WAL lets them read during writes);
+foreign keys are switched on per connection. A writer waits up to the busy timeout for the lock, then the
+request is answered 503 with Retry-After (fusion/api/problems.py). Python 3.11's sqlite3 has no ``autocommit``
 attribute, hence the ``isolation_level = None`` + ``begin`` event recipe.
 """
 
@@ -10,25 +12,31 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from flask import Flask, current_app, g
+from flask import Flask, current_app, g, request
 from sqlalchemy import create_engine, event, inspect
 from sqlalchemy.engine import Engine
 from sqlalchemy.orm import Session, sessionmaker
 
 from .errors import ConfigError
 
-__all__ = ["make_engine", "init_app", "get_session", "alembic_config", "upgrade", "current_revision",
+__all__ = ["make_engine", "init_app", "get_session", "read_session", "alembic_config", "upgrade", "current_revision",
            "head_revision", "MIGRATIONS"]
 
 MIGRATIONS = Path(__file__).resolve().parent.parent / "migrations"
 
 
-def make_engine(url: str, *, foreign_keys: bool = True, synchronous: str = "NORMAL") -> Engine:
-    """Create an engine; on SQLite set WAL, busy timeout, `synchronous` and foreign keys on each connection."""
+def make_engine(url: str, *, foreign_keys: bool = True, synchronous: str = "NORMAL",
+                busy_timeout_s: float = 15.0) -> Engine:
+    """Create an engine; on SQLite set WAL, busy timeout, `synchronous` and foreign keys on each connection.
+
+    Transactions begin IMMEDIATE (they take the write lock at once) unless the connection carries the
+    execution option ``sqlite_begin="DEFERRED"`` (see :func:`read_session`).
+    """
     if synchronous.upper() not in {"OFF", "NORMAL", "FULL", "EXTRA"}:
         raise ConfigError(f"SQLITE_SYNCHRONOUS must be OFF, NORMAL, FULL or EXTRA, was {synchronous!r}")
+    busy_ms = int(busy_timeout_s * 1000)
     try:
-        engine = create_engine(url, connect_args={"timeout": 15} if url.startswith("sqlite") else {},
+        engine = create_engine(url, connect_args={"timeout": busy_timeout_s} if url.startswith("sqlite") else {},
                                pool_pre_ping=not url.startswith("sqlite"))
     except Exception as exc:  # ArgumentError, missing driver, ...
         raise ConfigError(f"DATABASE_URL {url!r} cannot be used: {exc}") from None
@@ -37,30 +45,48 @@ def make_engine(url: str, *, foreign_keys: bool = True, synchronous: str = "NORM
         @event.listens_for(engine, "connect")
         def _on_connect(dbapi_conn, _record):
             dbapi_conn.isolation_level = None  # SQLAlchemy emits BEGIN itself (see module docstring)
-            for pragma in ("journal_mode=WAL", "busy_timeout=15000", f"synchronous={synchronous.upper()}",
+            for pragma in ("journal_mode=WAL", f"busy_timeout={busy_ms}", f"synchronous={synchronous.upper()}",
                            f"foreign_keys={'ON' if foreign_keys else 'OFF'}"):
                 dbapi_conn.execute(f"PRAGMA {pragma}")
 
         @event.listens_for(engine, "begin")
         def _on_begin(conn):
-            conn.exec_driver_sql("BEGIN IMMEDIATE")
+            mode = conn.get_execution_options().get("sqlite_begin", "IMMEDIATE")
+            conn.exec_driver_sql(f"BEGIN {mode}")
 
     return engine
 
 
 def init_app(app: Flask) -> None:
     """Give the app an engine and a session factory; close the request's session at teardown."""
-    engine = make_engine(app.config["DATABASE_URL"], synchronous=app.config["SQLITE_SYNCHRONOUS"])
+    engine = make_engine(app.config["DATABASE_URL"], synchronous=app.config["SQLITE_SYNCHRONOUS"],
+                         busy_timeout_s=app.config["SQLITE_BUSY_TIMEOUT_S"])
     app.extensions["occfuse.engine"] = engine
     app.extensions["occfuse.sessions"] = sessionmaker(engine, expire_on_commit=False)
+    # Same pool; only the BEGIN differs (ignored on other databases).
+    app.extensions["occfuse.read_sessions"] = sessionmaker(
+        engine.execution_options(sqlite_begin="DEFERRED"), expire_on_commit=False)
     app.teardown_appcontext(_close_session)
 
 
+_READ_METHODS = frozenset({"GET", "HEAD", "OPTIONS"})
+
+
 def get_session() -> Session:
-    """The current request's session (one per request, closed at teardown)."""
+    """The current request's session (one per request, closed at teardown).
+
+    GET requests get a read session (``BEGIN DEFERRED`` on SQLite), so reads run beside a writer instead of
+    queueing for the write lock; every other method gets a write session (``BEGIN IMMEDIATE``).
+    """
     if "db_session" not in g:
-        g.db_session = current_app.extensions["occfuse.sessions"]()
+        kind = "occfuse.read_sessions" if request.method in _READ_METHODS else "occfuse.sessions"
+        g.db_session = current_app.extensions[kind]()
     return g.db_session
+
+
+def read_session() -> Session:
+    """A new read-only session (``BEGIN DEFERRED`` on SQLite); the caller closes it (use ``with``)."""
+    return current_app.extensions["occfuse.read_sessions"]()
 
 
 def _close_session(_exc=None) -> None:

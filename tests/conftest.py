@@ -8,6 +8,7 @@ through the connection's ``search_path``, and the schema is dropped afterwards.
 
 from __future__ import annotations
 
+import logging
 import os
 import uuid
 from datetime import datetime, timedelta, timezone
@@ -24,6 +25,51 @@ PLAN = {"channels": [{"id": f"ch{j}", "center_hz": 470e6 + 8e6 * j, "bandwidth_h
 
 
 PG_ENV = "OCCFUSE_TEST_POSTGRES_URL"
+
+# Every secret the suite knows: the configured tokens plus every node token the registry hands out.
+READER = "reader-secret-for-tests"
+_SECRETS: set[str] = {ADMIN, READER}
+
+
+class _Records(logging.Handler):
+    def __init__(self):
+        super().__init__(logging.DEBUG)
+        self.formatter = logging.Formatter("%(name)s %(levelname)s %(message)s")
+        self.lines: list[str] = []
+
+    def emit(self, record):
+        self.lines.append(self.format(record))  # message, arguments and any traceback
+
+
+@pytest.fixture(scope="session", autouse=True)
+def _record_issued_tokens():
+    """Remember every node token the registry issues during the suite (session scope: before module fixtures)."""
+    import fusion.registry as registry
+
+    issue = registry.new_token
+
+    def recorded():
+        token = issue()
+        _SECRETS.add(token)
+        return token
+
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr(registry, "new_token", recorded)
+        yield
+
+
+@pytest.fixture(autouse=True)
+def _no_token_is_ever_logged():
+    """Capture every log record of every test; fail the test if any token appears in one."""
+    handler = _Records()
+    root = logging.getLogger()
+    root.addHandler(handler)
+    try:
+        yield
+    finally:
+        root.removeHandler(handler)
+    leaked = [line for line in handler.lines if any(secret in line for secret in _SECRETS)]
+    assert not leaked, f"a token was logged: {leaked[0][:200]}"
 
 
 def _pg_schema_url(base: str):

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from flask import current_app, g, request
 
-from ..db import get_session
+from ..db import read_session
 from ..errors import Forbidden, Unauthorized
 from ..registry import node_by_token, same_secret
 
@@ -35,43 +35,55 @@ def bearer_token() -> str | None:
     return token.strip()
 
 
+def _node_for(token: str):
+    """(id, name, disabled) of the node whose token this is, or None. A short read, never the write lock."""
+    with read_session() as session:
+        node = node_by_token(session, token)
+        return None if node is None else (node.id, node.name, node.disabled)
+
+
+def _who(token: str) -> tuple[str | None, tuple | None]:
+    """Which role a presented token proves ("admin", "reader", "node" or None), and the node if it is one."""
+    if same_secret(token, current_app.config.get("ADMIN_TOKEN")):
+        return "admin", None
+    if same_secret(token, current_app.config.get("READ_TOKEN")):
+        return "reader", None
+    node = _node_for(token)
+    return ("node" if node else None), node
+
+
 def _check() -> None:
+    """401 when no token or one matching nobody; 403 when a valid token of another role (see the README table)."""
     view = current_app.view_functions.get(request.endpoint) if request.endpoint else None
     if view is None:  # 404 / 405 are answered by the routing error itself
         return
     needed = getattr(view, "required_role", "admin")
-    if needed == "public":
-        return
+    if needed == "public" or (needed == "reader" and not current_app.config.get("READ_TOKEN")):
+        return  # reads are open unless a read token is configured; a presented token is then ignored
     token = bearer_token()
-    admin = current_app.config.get("ADMIN_TOKEN")
-    if needed == "reader":
-        reader = current_app.config.get("READ_TOKEN")
-        if not reader:
-            return
-        if token is None:
-            raise Unauthorized("reads need a bearer token on this server (Authorization: Bearer <read token>)")
-        if not (same_secret(token, reader) or same_secret(token, admin)):
-            raise Unauthorized("the bearer token is not valid for reading")
-        return
     if token is None:
         raise Unauthorized(f"this route needs a bearer token (Authorization: Bearer <{needed} token>)")
-    if needed == "admin":
-        if not admin:
-            raise Forbidden("admin routes are disabled: no admin token is configured (set OCCFUSE_ADMIN_TOKEN)")
-        if not same_secret(token, admin):
-            if node_by_token(get_session(), token) is not None:
-                raise Forbidden("this route needs the admin token; a node token cannot do it")
-            raise Unauthorized("the bearer token is not the admin token")
+    if needed == "admin" and not current_app.config.get("ADMIN_TOKEN"):
+        raise Forbidden("admin routes are disabled: no admin token is configured (set OCCFUSE_ADMIN_TOKEN)")
+    who, node = _who(token)
+    if who is None:
+        raise Unauthorized(f"the bearer token matches no {needed} and no node; check the token "
+                           f"(a node's token changes when it is rotated)")
+    if needed == "reader":
+        if who == "node":
+            raise Forbidden("a node token cannot read; use the read token (OCCFUSE_READ_TOKEN) or the admin token")
         return
-    # node
-    node = node_by_token(get_session(), token)
-    if node is None:
-        if same_secret(token, admin):
-            raise Forbidden("reports must be posted with the node's own token, not the admin token")
-        raise Unauthorized("the bearer token matches no node; register the node (occfuse node add NAME)")
-    if node.disabled:
-        raise Forbidden(f"node {node.name!r} is disabled; an admin can re-enable it")
-    g.node_id = node.id
+    if needed == "admin":
+        if who != "admin":
+            raise Forbidden(f"this route needs the admin token; a {who} token cannot do it")
+        return
+    # needed == "node"
+    if who != "node":
+        raise Forbidden(f"reports must be posted with the node's own token, not the {who} token")
+    node_id, name, disabled = node
+    if disabled:
+        raise Forbidden(f"node {name!r} is disabled; an admin can re-enable it")
+    g.node_id = node_id
 
 
 def init_app(app) -> None:

@@ -16,8 +16,13 @@ bp = Blueprint("openapi", __name__)
 
 _P = {"description": "Problem details (RFC 9457)",
       "content": {"application/problem+json": {"schema": {"$ref": "#/components/schemas/Problem"}}}}
-_WRITE_ERRORS = {"400": _P, "401": _P, "403": _P, "413": _P, "415": _P, "422": _P}
-_READ_ERRORS = {"401": _P, "422": _P}
+_BUSY = {"description": "The database is busy (another writer holds its lock) or unavailable; nothing was "
+                         "stored; retry after Retry-After seconds",
+         "headers": {"Retry-After": {"description": "Seconds to wait before retrying", "required": True,
+                                     "schema": {"type": "integer", "minimum": 0}}},
+         "content": {"application/problem+json": {"schema": {"$ref": "#/components/schemas/Problem"}}}}
+_WRITE_ERRORS = {"400": _P, "401": _P, "403": _P, "413": _P, "415": _P, "422": _P, "503": _BUSY}
+_READ_ERRORS = {"401": _P, "403": _P, "422": _P, "503": _BUSY}
 
 _IN = [s.NodeIn, s.NodeUpdate, s.PlanIn, s.ReportIn, s.ReportBatchIn, s.FusionSettingsIn]
 _OUT = [s.NodeCreated, s.TokenOut, s.NodeOut, s.NodeList, s.PlanOut, s.ReportAck, s.BatchAck, s.ChannelsOut,
@@ -59,7 +64,7 @@ def build_spec() -> dict:
                                                                        "404": _P}}},
         "/api/v1/nodes/{name}/token": {
             "post": {"summary": "Issue a new token for a node (the old one stops working)", "security": admin,
-                     "parameters": [name], "responses": {**ok(s.TokenOut), "401": _P, "403": _P, "404": _P}}},
+                     "parameters": [name], "responses": {**ok(s.TokenOut), "401": _P, "403": _P, "404": _P, "503": _BUSY}}},
         "/api/v1/plan": {
             "get": {"summary": "The current band plan", "security": reader,
                     "responses": {**ok(s.PlanOut), **_READ_ERRORS}},

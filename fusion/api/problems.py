@@ -6,6 +6,8 @@ import json
 
 from flask import Response, current_app, request
 from pydantic import BaseModel, ValidationError
+from sqlalchemy.exc import OperationalError
+from sqlalchemy.exc import TimeoutError as PoolTimeout
 from werkzeug.exceptions import HTTPException
 
 from ..errors import APIError, BadRequest, Unprocessable
@@ -110,10 +112,25 @@ def init_app(app) -> None:
         headers = {k: v for k, v in exc.get_headers() if k.lower() != "content-type"}
         return problem(exc.code or 500, exc.name, detail, headers=headers)
 
+    @app.errorhandler(OperationalError)
+    @app.errorhandler(PoolTimeout)
+    def _database_busy(exc):
+        # A writer held the lock past the busy timeout (or the database is unreachable): the request was rolled
+        # back, nothing of it is stored, and the client may simply retry. Log the class only: the message can
+        # carry SQL parameters.
+        current_app.logger.warning("database busy or unavailable on %s %s: %s", request.method, request.path,
+                                   type(getattr(exc, "orig", exc)).__name__)
+        retry = current_app.config.get("RETRY_AFTER_S", 1)
+        return problem(503, "Service Unavailable", "the database is busy (another writer holds its lock) or "
+                       "unavailable; nothing of this request was stored; retry after the Retry-After seconds",
+                       headers={"Retry-After": str(retry)})
+
     @app.errorhandler(Exception)
     def _unhandled(exc: Exception):
         if isinstance(exc, HTTPException):
             return _http_error(exc)
+        if isinstance(exc, (OperationalError, PoolTimeout)):
+            return _database_busy(exc)
         # Log the traceback for the operator; the client gets no internals.
         current_app.logger.exception("unhandled error on %s %s", request.method, request.path)
         return problem(500, "Internal Server Error", "the server failed to handle this request; it has been logged")

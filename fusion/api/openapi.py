@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from functools import lru_cache
 
-from flask import Blueprint, jsonify
+from flask import Blueprint, current_app, jsonify
 from pydantic.json_schema import models_json_schema
 
 from . import schemas as s
@@ -29,8 +29,9 @@ _OUT = [s.NodeCreated, s.TokenOut, s.NodeOut, s.NodeList, s.PlanOut, s.ReportAck
         s.HistoryOut, s.FusionSettingsOut, s.Health, s.Problem]
 
 
-@lru_cache(maxsize=1)
-def build_spec() -> dict:
+@lru_cache(maxsize=2)
+def build_spec(reads_need_token: bool = False) -> dict:
+    """The document; `reads_need_token` (a READ_TOKEN is configured) makes the reader scheme required."""
     keymap, defs = models_json_schema([(m, "validation") for m in _IN] + [(m, "serialization") for m in _OUT],
                                       ref_template="#/components/schemas/{model}")
 
@@ -45,7 +46,8 @@ def build_spec() -> dict:
     def ok(model, code="200", text="OK"):
         return {code: {"description": text, "content": {"application/json": {"schema": ref(model)}}}}
 
-    admin, node, reader = [{"admin": []}], [{"node": []}], [{}, {"reader": []}]
+    admin, node = [{"admin": []}], [{"node": []}]
+    reader = [{"reader": []}] if reads_need_token else [{}, {"reader": []}]
     name = {"name": "name", "in": "path", "required": True, "schema": {"type": "string", "pattern": s.NAME_PATTERN}}
     chan = {"name": "channel_id", "in": "path", "required": True, "schema": {"type": "string"}}
     query = lambda n, schema: {"name": n, "in": "query", "required": False, "schema": schema}  # noqa: E731
@@ -123,4 +125,4 @@ def build_spec() -> dict:
 @bp.get("/api/v1/openapi.json")
 @role("public")
 def document():
-    return jsonify(build_spec())
+    return jsonify(build_spec(bool(current_app.config.get("READ_TOKEN"))))

@@ -8,7 +8,7 @@ from flask import Response, current_app, request
 from pydantic import BaseModel, ValidationError
 from sqlalchemy.exc import OperationalError
 from sqlalchemy.exc import TimeoutError as PoolTimeout
-from werkzeug.exceptions import HTTPException
+from werkzeug.exceptions import HTTPException, RequestEntityTooLarge
 
 from ..errors import APIError, BadRequest, Unprocessable
 from ..plan import error_path
@@ -16,6 +16,7 @@ from ..plan import error_path
 __all__ = ["problem", "init_app", "read_body", "read_query", "respond", "validation_errors"]
 
 PROBLEM_TYPE = "application/problem+json"
+MAX_ERRORS = 100  # listed per problem: a 50,000-item bad batch must not produce a 10 MB answer
 
 
 def problem(status: int, title: str, detail: str | None = None, errors: list | None = None,
@@ -24,7 +25,9 @@ def problem(status: int, title: str, detail: str | None = None, errors: list | N
     if detail:
         body["detail"] = detail
     if errors:
-        body["errors"] = errors
+        body["errors"] = errors[:MAX_ERRORS]
+        if len(errors) > MAX_ERRORS:
+            body["errors_total"] = len(errors)  # the first MAX_ERRORS are listed
     response = Response(json.dumps(body), status=status, mimetype=PROBLEM_TYPE)
     for key, value in (headers or {}).items():
         response.headers[key] = value
@@ -50,12 +53,27 @@ def read_body(model: type[BaseModel] | None = None):
     if not request.is_json:
         raise _UnsupportedMediaType()
     raw = request.get_data(cache=True)
+    limit = request.max_content_length
+    if limit is not None and request.content_length is None and len(raw) >= limit:
+        # A chunked body (no Content-Length) is cut at the limit by werkzeug's LimitedStream.readall without
+        # an error; parsing the cut-off prefix would give a misleading 400. Refuse it as too large instead
+        # (a chunked body of exactly the limit is refused too: the cut cannot be told from a real end).
+        raise RequestEntityTooLarge()
     try:
         parsed = json.loads(raw, parse_constant=_reject_constant)
+    except RecursionError:
+        # RFC 8259 section 9 lets a parser limit nesting; no valid request nests more than a few levels.
+        raise Unprocessable("the body nests arrays or objects too deeply (hundreds of levels); a report nests "
+                            "three levels", errors=[{"path": "(body)", "message": "nested too deeply"}]) from None
     except _NonFinite as exc:
         raise Unprocessable(f"the body contains {exc.args[0]}, which is not a finite number; JSON has no NaN or "
                             f"Infinity", errors=[{"path": "(body)", "message": f"{exc.args[0]} is not allowed"}])
-    except (ValueError, UnicodeDecodeError) as exc:
+    except UnicodeDecodeError as exc:
+        raise BadRequest(f"the body is not valid UTF-8 JSON: {exc}") from None
+    except ValueError as exc:
+        if "integer string conversion" in str(exc):  # CPython's 4,300-digit guard (docs: "int max str digits")
+            raise Unprocessable("the body contains an integer with thousands of digits; no field takes one",
+                                errors=[{"path": "(body)", "message": "integer too long"}]) from None
         raise BadRequest(f"the body is not valid JSON: {exc}") from None
     if model is None:
         return parsed

@@ -22,12 +22,13 @@ bp = Blueprint("reports", __name__, url_prefix="/api/v1/reports")
 def create():
     parsed = read_body()
     batch = isinstance(parsed, dict) and "reports" in parsed
+    limit = current_app.config["MAX_BATCH"]
+    # Count before validating the items: a huge batch is refused without validating (or listing) each one.
+    if batch and isinstance(parsed["reports"], list) and len(parsed["reports"]) > limit:
+        raise Unprocessable(f"reports: at most {limit} reports per batch, got {len(parsed['reports'])}; split "
+                            f"the batch", errors=[{"path": "reports", "message": f"more than {limit} items"}])
     body = read_body(ReportBatchIn if batch else ReportIn)
     reports = body.reports if batch else [body]
-    limit = current_app.config["MAX_BATCH"]
-    if len(reports) > limit:
-        raise Unprocessable(f"reports: at most {limit} reports per batch, got {len(reports)}; split the batch",
-                            errors=[{"path": "reports", "message": f"more than {limit} items"}])
     session = get_session()
     node = session.get(Node, g.node_id)
     results = ingest_reports(session, node, reports, prefix="reports" if batch else "", now=utcnow(),

@@ -123,7 +123,8 @@ class ReportIn(_In):
     n_samples: int = Field(ge=1, le=10**12, description="Complex samples per channel measurement.")
     noise_dbm: DBm | None = Field(default=None, description="The node's noise floor per channel, dBm.")
     node: str | None = Field(default=None, description="Optional; if given it must name the token's node.")
-    measurements: list[MeasurementIn] = Field(min_length=1)
+    measurements: list[MeasurementIn] = Field(min_length=1, max_length=4096,
+                                              description="At most one per plan channel (plans hold <= 4096).")
 
 
 class ReportBatchIn(_In):
@@ -239,4 +240,5 @@ class Problem(BaseModel):
     title: str
     status: int
     detail: str | None = None
-    errors: list[dict] | None = None
+    errors: list[dict] | None = Field(default=None, description="Each bad field: {path, message}; at most 100.")
+    errors_total: int | None = Field(default=None, description="How many errors there were, when over 100.")

@@ -9,6 +9,7 @@ with bounded memory. SQLite only: parsing and validation happen before any backe
 from __future__ import annotations
 
 import io
+import itertools
 import json
 import string
 import tracemalloc
@@ -24,12 +25,14 @@ from fusion import create_app
 from fusion.api.schemas import ReportIn
 from fusion.db import upgrade
 from fusion.ingest import content_hash
-from fusion.models import Report, unpack
+from fusion.models import Node, Report, unpack
 from tests.conftest import ADMIN
 
 CHANNELS = ["c0", "c1", "c2", "Ω-3"]  # "Ω-3" is not a valid id: the plan below uses ASCII ids only
 PLAN = {"channels": [{"id": c, "center_hz": 470e6 + 8e6 * j, "bandwidth_hz": 6e6}
                      for j, c in enumerate(CHANNELS[:3])]}
+TOKENS: dict[str, str] = {}
+GUARD_SEQ = itertools.count(10**12)
 LIMIT = 1_048_576  # MAX_CONTENT_LENGTH default, bytes
 
 
@@ -55,14 +58,15 @@ def _post_raw(client, headers, raw: bytes):
     return client.post("/api/v1/reports", data=raw, headers={**headers, "Content-Type": "application/json"})
 
 
-def _assert_accepted_round_trips_or_refused(app, response, sent):
-    """The property. `sent` is the decoded JSON value that was posted."""
+def _assert_accepted_round_trips_or_refused(app, response, sent, node="n1"):
+    """The property. `sent` is the decoded JSON value that was posted by `node`."""
     if 200 <= response.status_code < 300:
         reports = sent["reports"] if isinstance(sent, dict) and "reports" in sent else [sent]
         with app.extensions["occfuse.sessions"]() as s:
+            node_id = s.scalar(select(Node.id).where(Node.name == node))
             for raw in reports:
                 parsed = ReportIn.model_validate_json(json.dumps(raw))
-                row = s.scalars(select(Report).where(Report.seq == parsed.seq)).one()
+                row = s.scalars(select(Report).where(Report.seq == parsed.seq, Report.node_id == node_id)).one()
                 assert row.content_hash == content_hash(parsed)
                 assert row.n_samples == parsed.n_samples
                 assert row.measured_at == parsed.measured_at.astimezone(timezone.utc)
@@ -126,14 +130,19 @@ def test_near_valid_reports_and_batches_round_trip_or_are_refused(svc, value):
         assert _count(app) == before  # all-or-nothing, also for a batch with one bad report
 
 
-def test_the_near_valid_strategy_reaches_acceptance(svc):
-    """Guard against a vacuous property: a plainly valid report from the same shapes is accepted."""
-    app, client, node = svc
-    body = {"seq": 7, "measured_at": "2025-06-01T12:00:00+05:30", "n_samples": 4096,
-            "measurements": [{"channel": "c1", "power_dbm": -101.25}]}
-    r = _post_raw(client, node, json.dumps(body).encode())
-    assert r.status_code in (200, 201)
-    _assert_accepted_round_trips_or_refused(app, r, body)
+@settings(max_examples=30, deadline=None, derandomize=True, database=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
+@given(value=_valid_report)
+def test_the_valid_strategy_is_accepted(svc, value):
+    """Guard against a vacuous property: every valid report is accepted (by a node of its own, so no seq
+    stored by the tests above collides, and a fresh seq each) and round-trips."""
+    app, client, _ = svc
+    token = TOKENS.get("guard") or TOKENS.setdefault("guard", client.post(
+        "/api/v1/nodes", json={"name": "guard"}, headers={"Authorization": f"Bearer {ADMIN}"}).json["token"])
+    value = {**{k: v for k, v in value.items() if k != "node"}, "seq": next(GUARD_SEQ)}  # fresh seq each time
+    r = _post_raw(client, {"Authorization": f"Bearer {token}"}, json.dumps(value).encode())
+    assert r.status_code in (200, 201), r.get_data(as_text=True)[:300]
+    _assert_accepted_round_trips_or_refused(app, r, value, node="guard")
 
 
 # --- worst cases by hand --------------------------------------------------------------------------------

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import tomllib
 from pathlib import Path
+from typing import NamedTuple
 
 from pydantic import ValidationError
 from sqlalchemy import func, select
@@ -13,7 +14,7 @@ from .api.schemas import PlanIn
 from .errors import PlanError
 from .models import Channel, PlanRevision
 
-__all__ = ["read_plan_file", "store_plan", "current_plan", "error_path"]
+__all__ = ["read_plan_file", "store_plan", "current_plan", "plan_index", "PlanIndex", "error_path"]
 
 
 def error_path(loc) -> str:
@@ -64,6 +65,41 @@ def current_plan(session: Session) -> PlanRevision | None:
     stmt = (select(PlanRevision).options(selectinload(PlanRevision.channels))
             .order_by(PlanRevision.revision.desc()).limit(1))
     return session.scalars(stmt).first()
+
+
+class PlanIndex(NamedTuple):
+    """The newest plan revision, read-only: channel id -> position, and (id, center_hz, bandwidth_hz) rows."""
+
+    revision: int
+    positions: dict[str, int]
+    channels: tuple[tuple[str, float, float], ...]
+
+
+_INDEX_CACHE: dict[tuple, PlanIndex] = {}
+
+
+def plan_index(session: Session) -> PlanIndex | None:
+    """The newest plan as a :class:`PlanIndex`, or None before any plan is loaded.
+
+    A revision never changes once stored, so its channels are cached per process, keyed by database URL,
+    revision number and creation time (a database recreated at the same URL does not hit a stale entry).
+    Each call costs one indexed one-row query; ingest and reads call it on every request.
+    """
+    newest = session.execute(select(PlanRevision.revision, PlanRevision.created_at)
+                             .order_by(PlanRevision.revision.desc()).limit(1)).first()
+    if newest is None:
+        return None
+    key = (session.get_bind().url.render_as_string(hide_password=False), newest.revision, newest.created_at)
+    hit = _INDEX_CACHE.get(key)
+    if hit is None:
+        rows = session.execute(select(Channel.position, Channel.channel_id, Channel.center_hz, Channel.bandwidth_hz)
+                               .where(Channel.revision == newest.revision).order_by(Channel.position)).all()
+        hit = PlanIndex(newest.revision, {r.channel_id: r.position for r in rows},
+                        tuple((r.channel_id, r.center_hz, r.bandwidth_hz) for r in rows))
+        if len(_INDEX_CACHE) >= 64:  # bounded: one entry per database and revision seen by this process
+            _INDEX_CACHE.clear()
+        _INDEX_CACHE[key] = hit
+    return hit
 
 
 def store_plan(session: Session, plan: PlanIn) -> PlanRevision:

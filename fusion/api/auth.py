@@ -83,7 +83,7 @@ def _check() -> None:
     node_id, name, disabled = node
     if disabled:
         raise Forbidden(f"node {name!r} is disabled; an admin can re-enable it")
-    g.node_id = node_id
+    g.node_id, g.node_name = node_id, name
 
 
 def init_app(app) -> None:

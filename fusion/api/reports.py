@@ -4,10 +4,11 @@ from __future__ import annotations
 
 from flask import Blueprint, current_app, g
 
-from ..db import get_session
+from ..db import get_session, read_session
 from ..errors import Unprocessable
-from ..ingest import ingest_reports
-from ..models import Node, utcnow
+from ..ingest import NodeRef, ingest_reports
+from ..models import utcnow
+from ..plan import plan_index
 from .auth import role
 from .problems import read_body, respond
 from .schemas import BatchAck, ReportAck, ReportBatchIn, ReportIn
@@ -29,11 +30,12 @@ def create():
                             f"the batch", errors=[{"path": "reports", "message": f"more than {limit} items"}])
     body = read_body(ReportBatchIn if batch else ReportIn)
     reports = body.reports if batch else [body]
+    with read_session() as reader:  # outside the write transaction: it only takes the lock to store
+        plan = plan_index(reader)
     session = get_session()
-    node = session.get(Node, g.node_id)
-    results = ingest_reports(session, node, reports, prefix="reports" if batch else "", now=utcnow(),
-                             max_skew_s=current_app.config["MAX_SKEW_S"],
-                             max_measurements=current_app.config["MAX_MEASUREMENTS"])
+    results = ingest_reports(session, NodeRef(g.node_id, g.node_name), reports, prefix="reports" if batch else "",
+                             now=utcnow(), max_skew_s=current_app.config["MAX_SKEW_S"],
+                             max_measurements=current_app.config["MAX_MEASUREMENTS"], plan=plan)
     session.commit()  # durable before we acknowledge
     created = sum(status == "created" for _, status in results)
     status_code = 201 if created else 200

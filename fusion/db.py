@@ -64,8 +64,8 @@ def init_app(app: Flask) -> None:
     app.extensions["occfuse.engine"] = engine
     app.extensions["occfuse.sessions"] = sessionmaker(engine, expire_on_commit=False)
     # Same pool; only the BEGIN differs (ignored on other databases).
-    app.extensions["occfuse.read_sessions"] = sessionmaker(
-        engine.execution_options(sqlite_begin="DEFERRED"), expire_on_commit=False)
+    app.extensions["occfuse.read_engine"] = read_engine = engine.execution_options(sqlite_begin="DEFERRED")
+    app.extensions["occfuse.read_sessions"] = sessionmaker(read_engine, expire_on_commit=False)
     app.teardown_appcontext(_close_session)
 
 

@@ -9,7 +9,7 @@ from sqlalchemy.orm import Session
 
 from .errors import NotFound
 from .models import Decision, Epoch
-from .plan import current_plan
+from .plan import current_plan, plan_index
 
 __all__ = ["confidence_of", "latest_states", "free_channels", "channel_history", "last_epoch"]
 
@@ -26,20 +26,26 @@ def last_epoch(session: Session) -> Epoch | None:
 
 
 def latest_states(session: Session) -> dict:
-    """``{as_of, rule, channels: [...]}`` for the current plan; channels never decided are unknown."""
-    plan = current_plan(session)
-    epoch = last_epoch(session)
+    """``{as_of, rule, channels: [...]}`` for the current plan; channels never decided are unknown.
+
+    Read with Core rows and the cached plan index (no ORM objects): this backs the most frequent query.
+    """
+    plan = plan_index(session)
+    epoch = session.execute(select(Epoch.id, Epoch.started_at, Epoch.rule).order_by(Epoch.id.desc()).limit(1)).first()
     decided = {}
     if epoch is not None:
-        decided = {d.channel_id: d for d in session.scalars(select(Decision).where(Decision.epoch_id == epoch.id))}
+        d = Decision.__table__.c
+        decided = {row.channel_id: row for row in session.execute(
+            select(d.channel_id, d.state, d.p_occupied, d.nodes, d.decided_at).where(d.epoch_id == epoch.id))}
     channels = []
-    for ch in plan.channels if plan else []:
-        d = decided.get(ch.channel_id)
-        state = d.state if d else "unknown"
-        p = d.p_occupied if d else None
-        channels.append({"id": ch.channel_id, "center_hz": ch.center_hz, "bandwidth_hz": ch.bandwidth_hz,
+    for channel_id, center_hz, bandwidth_hz in plan.channels if plan else ():
+        row = decided.get(channel_id)
+        state = row.state if row else "unknown"
+        p = row.p_occupied if row else None
+        channels.append({"id": channel_id, "center_hz": center_hz, "bandwidth_hz": bandwidth_hz,
                          "state": state, "p_occupied": p, "confidence": confidence_of(state, p),
-                         "nodes": d.nodes if d else 0, "decided_at": d.decided_at if d else None})
+                         "nodes": row.nodes if row else 0,
+                         "decided_at": row.decided_at if row else None})
     return {"as_of": epoch.started_at if epoch else None, "rule": epoch.rule if epoch else None,
             "channels": channels}
 

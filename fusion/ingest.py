@@ -14,13 +14,13 @@ from datetime import datetime, timedelta, timezone
 from typing import NamedTuple
 
 from sqlalchemy import insert, select, update
-from sqlalchemy.exc import IntegrityError
+from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
 from .api.schemas import ReportIn
 from .errors import Conflict, Forbidden, Unprocessable
 from .models import Node, Report, pack
-from .plan import PlanIndex, plan_index
+from .plan import PlanIndex, newest_revision, plan_index
 
 __all__ = ["content_hash", "ingest_reports", "NodeRef"]
 
@@ -49,13 +49,32 @@ def ingest_reports(session: Session, node: NodeRef | Node, reports: list[ReportI
     """Validate and store `reports` from `node`; return ``[(seq, "created" | "duplicate"), ...]``.
 
     `prefix` is the field path of the first report (``""`` for a single report, ``"reports"`` for a batch),
-    used to say where each error is. `plan` is the plan to check against (read beforehand, so the write
-    transaction stays short); by default the newest one, read in `session`. The caller commits.
+    used to say where each error is. `plan` is a guess at the newest plan (:func:`fusion.plan.last_seen_plan`):
+    the reports are validated against it *before* the transaction starts, then the guess is confirmed with
+    one query inside it (and the reports re-validated in the rare case a new plan arrived meanwhile), so the
+    write lock is held only for the statements that store. Without a guess the plan is read first. The
+    caller commits.
     """
-    if plan is None:
-        plan = plan_index(session)
+    check = dict(prefix=prefix, now=now, max_skew_s=max_skew_s, max_measurements=max_measurements)
+    if plan is not None:
+        try:
+            rows = _prepare(node, reports, plan, **check)
+        except Unprocessable:
+            rows = None  # maybe only because the guess is outdated (a channel the new plan added)
+        if newest_revision(session) == (plan.revision, plan.created_at):  # opens the write transaction
+            if rows is None:
+                rows = _prepare(node, reports, plan, **check)  # the guess was right: raise its errors
+            return _store(session, node, rows, now)
+    plan = plan_index(session)
     if plan is None:
         raise Conflict("no band plan is loaded yet; an admin must PUT /api/v1/plan before nodes can report")
+    rows = _prepare(node, reports, plan, **check)
+    return _store(session, node, rows, now)
+
+
+def _prepare(node, reports: list[ReportIn], plan: PlanIndex, *, prefix: str, now: datetime, max_skew_s: float,
+             max_measurements: int) -> dict[int, tuple[str, dict]]:
+    """Check `reports` against `plan`; return ``{seq: (content hash, row)}`` or raise with every error."""
     positions = plan.positions
     n_channels = len(positions)
     errors: list[dict] = []
@@ -106,32 +125,40 @@ def ingest_reports(session: Session, node: NodeRef | Node, reports: list[ReportI
     if errors:
         detail = "; ".join(f"{e['path']}: {e['message']}" for e in errors[:5])
         raise Unprocessable(f"nothing was stored: {detail}" + (" ..." if len(errors) > 5 else ""), errors=errors)
+    return rows
 
-    # The write part: Core statements (no ORM unit of work), so the write lock is held only for these.
+
+def _store(session: Session, node, rows: dict[int, tuple[str, dict]], now: datetime) -> list[tuple[int, str]]:
+    """Store the new rows, acknowledge the identical ones, refuse a seq stored with other content.
+
+    One ``INSERT ... ON CONFLICT (node_id, seq) DO NOTHING RETURNING seq`` (SQLite >= 3.35, PostgreSQL) stores
+    what is new and is atomic against a concurrent copy of the same report; only the seqs it skipped are
+    read back, to tell a retry (same content hash) from a conflict. On a conflict the caller's transaction is
+    rolled back (the request never commits), so nothing of the request is stored.
+    """
     table = Report.__table__
-    # On SQLite the dedupe SELECT below opens the transaction with BEGIN IMMEDIATE, so no other writer can
-    # insert between our check and our insert; elsewhere (PostgreSQL) a SAVEPOINT catches that race.
-    guard = session.get_bind().dialect.name != "sqlite"
-    for attempt in (1, 2):  # a concurrent insert of the same seq lands between our check and our insert
-        stored = dict(session.execute(select(table.c.seq, table.c.content_hash)
-                                      .where(table.c.node_id == node.id, table.c.seq.in_(list(rows)))).all())
-        clashes = sorted(seq for seq, h in stored.items() if h != rows[seq][0])
+    conn = session.connection()  # Core from here on: these statements run on every report request
+    dialect = conn.dialect.name
+    if dialect in ("sqlite", "postgresql"):
+        module = sqlite if dialect == "sqlite" else postgresql
+        stmt = (module.insert(table).on_conflict_do_nothing(index_elements=["node_id", "seq"])
+                .returning(table.c.seq))
+        created = set(conn.execute(stmt, [row for _, row in rows.values()]).scalars())
+    else:  # any other backend: check, then insert (a concurrent twin may then fail with IntegrityError)
+        have = set(conn.execute(select(table.c.seq).where(table.c.node_id == node.id,
+                                                          table.c.seq.in_(list(rows)))).scalars())
+        new = [row for seq, (_, row) in rows.items() if seq not in have]
+        if new:
+            conn.execute(insert(table), new)
+        created = {row["seq"] for row in new}
+    skipped = [seq for seq in rows if seq not in created]
+    if skipped:
+        stored = dict(conn.execute(select(table.c.seq, table.c.content_hash)
+                                   .where(table.c.node_id == node.id, table.c.seq.in_(skipped))).all())
+        clashes = sorted(seq for seq in skipped if stored.get(seq) != rows[seq][0])
         if clashes:
             raise Conflict(f"seq {clashes[0]} was already stored with other content; a retry must re-send "
                            f"exactly the same report, a new report needs a new seq",
                            errors=[{"path": "seq", "message": f"seq {s} conflicts"} for s in clashes])
-        new = [row for seq, (_, row) in rows.items() if seq not in stored]
-        if not new:
-            break
-        if not guard:
-            session.execute(insert(table), new)
-            break
-        try:
-            with session.begin_nested():
-                session.execute(insert(table), new)
-            break
-        except IntegrityError:
-            if attempt == 2:
-                raise
-    session.execute(update(Node.__table__).where(Node.__table__.c.id == node.id).values(last_seen=now))
-    return [(seq, "duplicate" if seq in stored else "created") for seq in rows]
+    conn.execute(update(Node.__table__).where(Node.__table__.c.id == node.id).values(last_seen=now))
+    return [(seq, "created" if seq in created else "duplicate") for seq in rows]

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import tomllib
+from datetime import datetime
 from pathlib import Path
 from typing import NamedTuple
 
@@ -14,7 +15,8 @@ from .api.schemas import PlanIn
 from .errors import PlanError
 from .models import Channel, PlanRevision
 
-__all__ = ["read_plan_file", "store_plan", "current_plan", "plan_index", "PlanIndex", "error_path"]
+__all__ = ["read_plan_file", "store_plan", "current_plan", "plan_index", "newest_revision", "last_seen_plan",
+           "PlanIndex", "error_path"]
 
 
 def error_path(loc) -> str:
@@ -71,11 +73,24 @@ class PlanIndex(NamedTuple):
     """The newest plan revision, read-only: channel id -> position, and (id, center_hz, bandwidth_hz) rows."""
 
     revision: int
+    created_at: datetime
     positions: dict[str, int]
     channels: tuple[tuple[str, float, float], ...]
 
 
 _INDEX_CACHE: dict[tuple, PlanIndex] = {}
+_LAST: dict[str, PlanIndex] = {}  # database URL -> the newest plan this process has seen there
+
+
+def _url(session: Session) -> str:
+    return session.get_bind().url.render_as_string(hide_password=False)
+
+
+def newest_revision(session: Session) -> tuple[int, datetime] | None:
+    """(revision, created_at) of the newest plan, or None; one indexed one-row query."""
+    row = session.execute(select(PlanRevision.revision, PlanRevision.created_at)
+                          .order_by(PlanRevision.revision.desc()).limit(1)).first()
+    return None if row is None else (row.revision, row.created_at)
 
 
 def plan_index(session: Session) -> PlanIndex | None:
@@ -85,21 +100,28 @@ def plan_index(session: Session) -> PlanIndex | None:
     revision number and creation time (a database recreated at the same URL does not hit a stale entry).
     Each call costs one indexed one-row query; ingest and reads call it on every request.
     """
-    newest = session.execute(select(PlanRevision.revision, PlanRevision.created_at)
-                             .order_by(PlanRevision.revision.desc()).limit(1)).first()
+    newest = newest_revision(session)
     if newest is None:
         return None
-    key = (session.get_bind().url.render_as_string(hide_password=False), newest.revision, newest.created_at)
+    url = _url(session)
+    key = (url, *newest)
     hit = _INDEX_CACHE.get(key)
     if hit is None:
         rows = session.execute(select(Channel.position, Channel.channel_id, Channel.center_hz, Channel.bandwidth_hz)
-                               .where(Channel.revision == newest.revision).order_by(Channel.position)).all()
-        hit = PlanIndex(newest.revision, {r.channel_id: r.position for r in rows},
+                               .where(Channel.revision == newest[0]).order_by(Channel.position)).all()
+        hit = PlanIndex(newest[0], newest[1], {r.channel_id: r.position for r in rows},
                         tuple((r.channel_id, r.center_hz, r.bandwidth_hz) for r in rows))
         if len(_INDEX_CACHE) >= 64:  # bounded: one entry per database and revision seen by this process
             _INDEX_CACHE.clear()
         _INDEX_CACHE[key] = hit
+    _LAST[url] = hit
     return hit
+
+
+def last_seen_plan(url: str) -> PlanIndex | None:
+    """The newest plan this process has read from database `url`, without a query; it may be outdated, so a
+    caller must confirm it (:func:`newest_revision`) inside its own transaction."""
+    return _LAST.get(url)
 
 
 def store_plan(session: Session, plan: PlanIn) -> PlanRevision:

@@ -8,9 +8,11 @@ from __future__ import annotations
 
 from flask import current_app, g, request
 
-from ..db import read_session
+from sqlalchemy import select
+
 from ..errors import Forbidden, Unauthorized
-from ..registry import node_by_token, same_secret
+from ..models import Node
+from ..registry import hash_token, same_secret
 
 __all__ = ["role", "init_app", "bearer_token"]
 
@@ -36,10 +38,13 @@ def bearer_token() -> str | None:
 
 
 def _node_for(token: str):
-    """(id, name, disabled) of the node whose token this is, or None. A short read, never the write lock."""
-    with read_session() as session:
-        node = node_by_token(session, token)
-        return None if node is None else (node.id, node.name, node.disabled)
+    """(id, name, disabled) of the node whose token this is, or None. A short Core read (it runs on every
+    node request), never the write lock."""
+    node = Node.__table__.c
+    with current_app.extensions["occfuse.read_engine"].connect() as conn:
+        row = conn.execute(select(node.id, node.name, node.disabled)
+                           .where(node.token_hash == hash_token(token))).first()
+    return None if row is None else tuple(row)
 
 
 def _who(token: str) -> tuple[str | None, tuple | None]:

@@ -4,11 +4,11 @@ from __future__ import annotations
 
 from flask import Blueprint, current_app, g
 
-from ..db import get_session, read_session
+from ..db import get_session
 from ..errors import Unprocessable
 from ..ingest import NodeRef, ingest_reports
 from ..models import utcnow
-from ..plan import plan_index
+from ..plan import last_seen_plan
 from .auth import role
 from .problems import read_body, respond
 from .schemas import BatchAck, ReportAck, ReportBatchIn, ReportIn
@@ -30,9 +30,9 @@ def create():
                             f"the batch", errors=[{"path": "reports", "message": f"more than {limit} items"}])
     body = read_body(ReportBatchIn if batch else ReportIn)
     reports = body.reports if batch else [body]
-    with read_session() as reader:  # outside the write transaction: it only takes the lock to store
-        plan = plan_index(reader)
     session = get_session()
+    # Validate against the newest plan this process knows, before the write transaction (ingest confirms it).
+    plan = last_seen_plan(session.get_bind().url.render_as_string(hide_password=False))
     results = ingest_reports(session, NodeRef(g.node_id, g.node_name), reports, prefix="reports" if batch else "",
                              now=utcnow(), max_skew_s=current_app.config["MAX_SKEW_S"],
                              max_measurements=current_app.config["MAX_MEASUREMENTS"], plan=plan)

@@ -1,0 +1,150 @@
+"""Shared pieces of the benchmarks: seed a database, start the real server on loopback, drive HTTP load.
+
+Not collected by pytest (tests/bench is excluded). Every load loop is bounded in count and time, and every
+connection goes to 127.0.0.1 only.
+"""
+
+from __future__ import annotations
+
+import http.client
+import json
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+
+__all__ = ["ADMIN", "seed", "Server", "report_body", "post_loop", "percentile"]
+
+ADMIN = "bench-admin-token"
+ROOT = Path(__file__).resolve().parents[2]
+ENV = {"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
+
+
+def seed(path: Path, *, n_nodes: int, n_channels: int) -> tuple[str, list[str], list[str]]:
+    """A fresh upgraded SQLite database with a plan of `n_channels` and `n_nodes` nodes; (url, tokens, ids)."""
+    from sqlalchemy.orm import Session
+
+    from fusion.api.schemas import PlanIn
+    from fusion.db import make_engine, upgrade
+    from fusion.plan import store_plan
+    from fusion.registry import register_node
+
+    url = f"sqlite:///{path}"
+    upgrade(url)
+    ids = [f"c{j:04d}" for j in range(n_channels)]
+    plan = PlanIn.model_validate({"channels": [{"id": c, "center_hz": 4.7e8 + 2e5 * j, "bandwidth_hz": 2e5}
+                                               for j, c in enumerate(ids)]})
+    engine = make_engine(url)
+    tokens = []
+    with Session(engine) as s, s.begin():
+        store_plan(s, plan)
+        for i in range(n_nodes):
+            tokens.append(register_node(s, f"node-{i:04d}")[1])
+    engine.dispose()
+    return url, tokens, ids
+
+
+def report_body(seq: int, ids: list[str], rng: np.random.Generator, *, at: datetime | None = None) -> dict:
+    powers = -100.0 + 10 * np.log10(rng.gamma(4096, 1.0, len(ids)) / 4096)  # noise only, exact law
+    return {"seq": seq, "measured_at": (at or datetime.now(timezone.utc)).isoformat(), "n_samples": 4096,
+            "noise_dbm": -100.0,
+            "measurements": [{"channel": c, "power_dbm": round(float(p), 3)} for c, p in zip(ids, powers)]}
+
+
+def _serve_has_workers() -> bool:
+    out = subprocess.run([sys.executable, "-m", "fusion.cli", "serve", "--help"], capture_output=True, text=True,
+                         env={**os.environ, **ENV}, cwd=ROOT)
+    return "--workers" in out.stdout
+
+
+class Server:
+    """The service on 127.0.0.1 with 2 worker processes: ``occfuse serve --workers 2`` when that exists,
+    else gunicorn started here on the app factory (2 gthread workers, the layout LIBRARY-NOTES recommends for
+    2 cores). `how` says which ran."""
+
+    def __init__(self, url: str, *, workers: int = 2, port: int = 18_473, scheduler: bool = False):
+        self.base = f"127.0.0.1:{port}"
+        env = {**os.environ, **ENV, "OCCFUSE_DATABASE_URL": url, "OCCFUSE_ADMIN_TOKEN": ADMIN,
+               "OCCFUSE_CONFIG": "", "OCCFUSE_LOG_LEVEL": "WARNING", "OCCFUSE_INTERVAL_S": "5"}
+        if _serve_has_workers():
+            cmd = [sys.executable, "-m", "fusion.cli", "serve", "--host", "127.0.0.1", "--port", str(port),
+                   "--workers", str(workers)]
+            self.how = f"occfuse serve --workers {workers}"
+        else:
+            gunicorn = shutil.which("gunicorn", path=str(Path(sys.executable).parent)) or "gunicorn"
+            cmd = [gunicorn, "-w", str(workers), "-k", "gthread", "--threads", "4", "-b", self.base,
+                   "--log-level", "warning", "-c", str(Path(__file__).with_name("gunicorn_bench.py")),
+                   "fusion:create_app()"]
+            self.how = f"gunicorn -w {workers} -k gthread --threads 4 (started by the bench; no serve --workers)"
+        self.proc = subprocess.Popen(cmd, env=env, cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+                                     start_new_session=True)
+        deadline = time.monotonic() + 60
+        while time.monotonic() < deadline:
+            try:
+                conn = http.client.HTTPConnection(self.base, timeout=2)
+                conn.request("GET", "/healthz")
+                if conn.getresponse().status in (200, 503):
+                    conn.close()
+                    return
+            except OSError:
+                time.sleep(0.2)
+        self.stop()
+        raise RuntimeError(f"server did not start: {self.proc.stderr.read().decode()[-2000:]}")
+
+    def stop(self) -> None:
+        if self.proc.poll() is None:
+            os.killpg(self.proc.pid, signal.SIGTERM)  # the whole group: master and workers
+            try:
+                self.proc.wait(timeout=30)
+            except subprocess.TimeoutExpired:
+                os.killpg(self.proc.pid, signal.SIGKILL)
+                self.proc.wait()
+        self.proc.stderr.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.stop()
+
+
+def post_loop(args) -> tuple[int, int, float, dict]:
+    """One client process: POST pre-encoded bodies over one keep-alive connection until `seconds` pass or
+    the bodies run out. Returns (requests ok, reports ok, elapsed s, {status: count} of the others)."""
+    base, token, bodies, per_body, seconds = args
+    headers = {"Authorization": f"Bearer {token}", "Content-Type": "application/json"}
+    conn = http.client.HTTPConnection(base, timeout=30)
+    ok = reports = 0
+    other: dict[int, int] = {}
+    start = time.perf_counter()
+    for body in bodies:
+        if time.perf_counter() - start > seconds:
+            break
+        conn.request("POST", "/api/v1/reports", body=body, headers=headers)
+        r = conn.getresponse()
+        r.read()
+        if r.status in (200, 201):
+            ok += 1
+            reports += per_body
+        else:
+            other[r.status] = other.get(r.status, 0) + 1
+        if r.getheader("Connection", "").lower() == "close":
+            conn.close()
+            conn = http.client.HTTPConnection(base, timeout=30)
+    elapsed = time.perf_counter() - start
+    conn.close()
+    return ok, reports, elapsed, other
+
+
+def encode(obj) -> bytes:
+    return json.dumps(obj, separators=(",", ":")).encode()
+
+
+def percentile(values, q: float) -> float:
+    return float(np.percentile(np.asarray(values), q))

@@ -1,0 +1,135 @@
+"""Ingest over real HTTP on loopback against the service with 2 workers (SQLite WAL), beside a raw sqlite3
+executemany of the same rows in the same run.
+
+Prints reports/s and measurements/s for single and batched 64-channel reports, the raw insert rate of the
+same rows (one row per report: the packed layout the service stores), and the ratios; then how the figures
+grow with channels and nodes. Targets (issue): >= 1,000 single 64-channel reports/s; batched >= 0.5 x raw.
+
+    python tests/bench/bench_ingest.py [--seconds 4] [--clients 3] [--quick]
+"""
+
+from __future__ import annotations
+
+import argparse
+import hashlib
+import sqlite3
+import sys
+import tempfile
+import time
+from concurrent.futures import ProcessPoolExecutor
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from _harness import Server, encode, post_loop, report_body, seed  # noqa: E402
+
+BATCH = 100
+
+
+def http_rate(base, tokens, ids, *, batch: int, seconds: float, clients: int, rng) -> dict:
+    """Each client posts as its own node, bodies prepared beforehand (bounded: at most 40,000 reports)."""
+    n_bodies = max(1, min(40_000 // batch // clients, 4_000))
+    jobs = []
+    now = datetime.now(timezone.utc)
+    template = [report_body(0, ids, rng, at=now) for _ in range(8)]  # measurement values from the exact law
+    for c in range(clients):
+        bodies = []
+        for b in range(n_bodies):
+            reps = [{**template[(b + k) % 8], "seq": b * batch + k + 1} for k in range(batch)]
+            bodies.append(encode(reps[0] if batch == 1 else {"reports": reps}))
+        jobs.append((base, tokens[c], bodies, batch, seconds))
+    start = time.perf_counter()
+    with ProcessPoolExecutor(clients) as pool:
+        results = list(pool.map(post_loop, jobs))
+    wall = time.perf_counter() - start
+    reports = sum(r[1] for r in results)
+    busy = max(r[2] for r in results)
+    others = {}
+    for r in results:
+        for k, v in r[3].items():
+            others[k] = others.get(k, 0) + v
+    return {"reports_s": reports / busy, "requests": sum(r[0] for r in results), "others": others, "wall": wall}
+
+
+def raw_rate(path: Path, ids, *, batch: int, n_rows: int, rng) -> float:
+    """The same rows (node, seq, times, n_samples, revision, packed float32 powers and noise, content hash)
+    with plain sqlite3 executemany, one transaction per `batch` rows, WAL + synchronous=NORMAL as served."""
+    conn = sqlite3.connect(path, isolation_level=None)
+    conn.execute("PRAGMA journal_mode=WAL")
+    conn.execute("PRAGMA synchronous=NORMAL")
+    node_id, revision = conn.execute("SELECT max(id) FROM node").fetchone()[0], 1
+    now = datetime.now(timezone.utc).replace(tzinfo=None).isoformat(sep=" ")
+    powers = [np.asarray([m["power_dbm"] for m in report_body(0, ids, rng)["measurements"]], "<f4").tobytes()
+              for _ in range(8)]
+    noise = np.full(len(ids), -100.0, "<f4").tobytes()
+    base_seq = 10**9 + 10**7 * batch  # distinct from the HTTP runs and from other raw runs
+    rows = [(node_id, base_seq + i, now, now, 4096, revision, powers[i % 8], noise,
+             hashlib.sha256(str(i).encode()).hexdigest()) for i in range(n_rows)]
+    sql = ("INSERT INTO report (node_id, seq, measured_at, received_at, n_samples, plan_revision, powers, noise, "
+           "content_hash) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)")
+    start = time.perf_counter()
+    for i in range(0, n_rows, batch):
+        conn.execute("BEGIN IMMEDIATE")
+        conn.executemany(sql, rows[i:i + batch])
+        conn.execute("COMMIT")
+    elapsed = time.perf_counter() - start
+    conn.close()
+    return n_rows / elapsed
+
+
+def run(n_nodes, n_channels, *, seconds, clients, rng, port) -> dict:
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "bench.db"
+        url, tokens, ids = seed(path, n_nodes=max(n_nodes, clients), n_channels=n_channels)
+        with Server(url, port=port) as server:
+            single = http_rate(server.base, tokens, ids, batch=1, seconds=seconds, clients=clients, rng=rng)
+            batched = http_rate(server.base, tokens[::-1], ids, batch=BATCH, seconds=seconds, clients=clients,
+                                rng=rng)
+            how = server.how
+        raw1 = raw_rate(path, ids, batch=1, n_rows=5_000, rng=rng)
+        raw_b = raw_rate(path, ids, batch=BATCH, n_rows=50_000, rng=rng)
+    return {"single": single, "batched": batched, "raw1": raw1, "raw_b": raw_b, "how": how, "ch": n_channels}
+
+
+def line(label, r):
+    s, b = r["single"]["reports_s"], r["batched"]["reports_s"]
+    return (f"{label:<22} single {s:8.0f} reports/s {s * r['ch']:10.0f} meas/s | raw 1/txn {r['raw1']:8.0f} "
+            f"rows/s  ratio {s / r['raw1']:5.2f} || batched({BATCH}) {b:8.0f} reports/s {b * r['ch']:10.0f} "
+            f"meas/s | raw {BATCH}/txn {r['raw_b']:8.0f} rows/s  ratio {b / r['raw_b']:5.2f}")
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--seconds", type=float, default=4.0)
+    ap.add_argument("--clients", type=int, default=3)
+    ap.add_argument("--quick", action="store_true", help="only the 64-channel run")
+    args = ap.parse_args()
+    rng = np.random.default_rng(8)
+    main_run = run(8, 64, seconds=args.seconds, clients=args.clients, rng=rng, port=18_471)
+    print(f"server: {main_run['how']}, SQLite WAL, synchronous=NORMAL; {args.clients} client processes on the "
+          f"same 2 cores, keep-alive, bodies encoded beforehand")
+    print(line("8 nodes x 64 channels", main_run))
+    for key in ("single", "batched"):
+        if main_run[key]["others"]:
+            print(f"  non-2xx answers ({key}): {main_run[key]['others']}")
+    s, b = main_run["single"]["reports_s"], main_run["batched"]["reports_s"]
+    print(f"target single >= 1000 reports/s: {'met' if s >= 1000 else 'NOT met'} ({s:.0f}); "
+          f"target batched >= 0.5 x raw: {'met' if b >= 0.5 * main_run['raw_b'] else 'NOT met'} "
+          f"({b / main_run['raw_b']:.2f})")
+    if args.quick:
+        return 0
+    print("growth with channels (8 nodes):")
+    for k, ch in enumerate((16, 256)):
+        print(line(f"8 nodes x {ch} channels", run(8, ch, seconds=args.seconds, clients=args.clients, rng=rng,
+                                                   port=18_480 + k)))
+    print("growth with nodes (64 channels):")
+    for k, n in enumerate((100, 1000)):
+        print(line(f"{n} nodes x 64 channels", run(n, 64, seconds=args.seconds, clients=args.clients, rng=rng,
+                                                   port=18_490 + k)))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

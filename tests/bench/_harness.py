@@ -23,6 +23,10 @@ __all__ = ["ADMIN", "seed", "Server", "report_body", "post_loop", "percentile"]
 
 ADMIN = "bench-admin-token"
 ROOT = Path(__file__).resolve().parents[2]
+# sync workers: each accepts one connection at a time, so the kernel spreads clients over both workers
+# (with gthread, one worker took every keep-alive connection and the other idled: measured).
+WORKER_CLASS = os.environ.get("BENCH_WORKER_CLASS", "sync")
+THREADS = os.environ.get("BENCH_THREADS", "1")
 ENV = {"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
 
 
@@ -65,8 +69,7 @@ def _serve_has_workers() -> bool:
 
 class Server:
     """The service on 127.0.0.1 with 2 worker processes: ``occfuse serve --workers 2`` when that exists,
-    else gunicorn started here on the app factory (2 gthread workers, the layout LIBRARY-NOTES recommends for
-    2 cores). `how` says which ran."""
+    else gunicorn started here on the app factory (WORKER_CLASS). `how` says which ran."""
 
     def __init__(self, url: str, *, workers: int = 2, port: int = 18_473, scheduler: bool = False):
         self.base = f"127.0.0.1:{port}"
@@ -78,10 +81,11 @@ class Server:
             self.how = f"occfuse serve --workers {workers}"
         else:
             gunicorn = shutil.which("gunicorn", path=str(Path(sys.executable).parent)) or "gunicorn"
-            cmd = [gunicorn, "-w", str(workers), "-k", "gthread", "--threads", "4", "-b", self.base,
+            cmd = [gunicorn, "-w", str(workers), "-k", WORKER_CLASS, "--threads", THREADS, "-b", self.base,
                    "--log-level", "warning", "-c", str(Path(__file__).with_name("gunicorn_bench.py")),
                    "fusion:create_app()"]
-            self.how = f"gunicorn -w {workers} -k gthread --threads 4 (started by the bench; no serve --workers)"
+            self.how = (f"gunicorn -w {workers} -k {WORKER_CLASS} --threads {THREADS} (started by the bench; "
+                        f"no serve --workers)")
         self.proc = subprocess.Popen(cmd, env=env, cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
                                      start_new_session=True)
         deadline = time.monotonic() + 60
@@ -96,6 +100,18 @@ class Server:
                 time.sleep(0.2)
         self.stop()
         raise RuntimeError(f"server did not start: {self.proc.stderr.read().decode()[-2000:]}")
+
+    def cpu_seconds(self) -> float:
+        """CPU time (user + system) used so far by the server's processes (master and workers), from /proc."""
+        total = 0
+        for stat in Path("/proc").glob("[0-9]*/stat"):
+            try:
+                fields = stat.read_text().rsplit(")", 1)[1].split()
+            except OSError:
+                continue
+            if int(fields[2]) == self.proc.pid:  # process group = the server's session leader
+                total += int(fields[11]) + int(fields[12])  # utime, stime (proc(5))
+        return total / os.sysconf("SC_CLK_TCK")
 
     def stop(self) -> None:
         if self.proc.poll() is None:

@@ -28,7 +28,7 @@ from _harness import Server, encode, post_loop, report_body, seed  # noqa: E402
 BATCH = 100
 
 
-def http_rate(base, tokens, ids, *, batch: int, seconds: float, clients: int, rng) -> dict:
+def http_rate(server, tokens, ids, *, batch: int, seconds: float, clients: int, rng, seq0: int = 0) -> dict:
     """Each client posts as its own node, bodies prepared beforehand (bounded: at most 40,000 reports)."""
     n_bodies = max(1, min(40_000 // batch // clients, 4_000))
     jobs = []
@@ -37,20 +37,23 @@ def http_rate(base, tokens, ids, *, batch: int, seconds: float, clients: int, rn
     for c in range(clients):
         bodies = []
         for b in range(n_bodies):
-            reps = [{**template[(b + k) % 8], "seq": b * batch + k + 1} for k in range(batch)]
+            reps = [{**template[(b + k) % 8], "seq": seq0 + b * batch + k + 1} for k in range(batch)]
             bodies.append(encode(reps[0] if batch == 1 else {"reports": reps}))
-        jobs.append((base, tokens[c], bodies, batch, seconds))
+        jobs.append((server.base, tokens[c], bodies, batch, seconds))
+    cpu0 = server.cpu_seconds()
     start = time.perf_counter()
     with ProcessPoolExecutor(clients) as pool:
         results = list(pool.map(post_loop, jobs))
     wall = time.perf_counter() - start
+    cpu = server.cpu_seconds() - cpu0
     reports = sum(r[1] for r in results)
     busy = max(r[2] for r in results)
     others = {}
     for r in results:
         for k, v in r[3].items():
             others[k] = others.get(k, 0) + v
-    return {"reports_s": reports / busy, "requests": sum(r[0] for r in results), "others": others, "wall": wall}
+    return {"reports_s": reports / busy, "requests": sum(r[0] for r in results), "others": others, "wall": wall,
+            "cpu_ms_per_report": 1e3 * cpu / max(reports, 1)}
 
 
 def raw_rate(path: Path, ids, *, batch: int, n_rows: int, rng) -> float:
@@ -79,25 +82,50 @@ def raw_rate(path: Path, ids, *, batch: int, n_rows: int, rng) -> float:
     return n_rows / elapsed
 
 
+def raw_measurement_rate(path: Path, ids, *, batch: int, n_reports: int, rng) -> float:
+    """For context: the unpacked layout DESIGN.md rejected, one row per (report, channel), executemany with one
+    transaction per `batch` reports. Returns measurements (rows) per second."""
+    conn = sqlite3.connect(path, isolation_level=None)
+    conn.execute("PRAGMA journal_mode=WAL")
+    conn.execute("PRAGMA synchronous=NORMAL")
+    conn.execute("CREATE TABLE IF NOT EXISTS raw_measurement (node_id INTEGER, seq INTEGER, channel INTEGER, "
+                 "power_dbm REAL, PRIMARY KEY (node_id, seq, channel))")
+    powers = [m["power_dbm"] for m in report_body(0, ids, rng)["measurements"]]
+    rows = [(1, i, j, p) for i in range(n_reports) for j, p in enumerate(powers)]
+    per_txn = batch * len(ids)
+    start = time.perf_counter()
+    for i in range(0, len(rows), per_txn):
+        conn.execute("BEGIN IMMEDIATE")
+        conn.executemany("INSERT INTO raw_measurement VALUES (?, ?, ?, ?)", rows[i:i + per_txn])
+        conn.execute("COMMIT")
+    elapsed = time.perf_counter() - start
+    conn.close()
+    return len(rows) / elapsed
+
+
 def run(n_nodes, n_channels, *, seconds, clients, rng, port) -> dict:
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "bench.db"
         url, tokens, ids = seed(path, n_nodes=max(n_nodes, clients), n_channels=n_channels)
         with Server(url, port=port) as server:
-            single = http_rate(server.base, tokens, ids, batch=1, seconds=seconds, clients=clients, rng=rng)
-            batched = http_rate(server.base, tokens[::-1], ids, batch=BATCH, seconds=seconds, clients=clients,
-                                rng=rng)
+            single = http_rate(server, tokens, ids, batch=1, seconds=seconds, clients=clients, rng=rng)
+            batched = http_rate(server, tokens, ids, batch=BATCH, seconds=seconds, clients=clients, rng=rng,
+                                seq0=10**6)
             how = server.how
         raw1 = raw_rate(path, ids, batch=1, n_rows=5_000, rng=rng)
         raw_b = raw_rate(path, ids, batch=BATCH, n_rows=50_000, rng=rng)
-    return {"single": single, "batched": batched, "raw1": raw1, "raw_b": raw_b, "how": how, "ch": n_channels}
+        raw_m = raw_measurement_rate(path, ids, batch=BATCH, n_reports=max(200, 200_000 // n_channels), rng=rng)
+    return {"single": single, "batched": batched, "raw1": raw1, "raw_b": raw_b, "raw_m": raw_m, "how": how,
+            "ch": n_channels}
 
 
 def line(label, r):
     s, b = r["single"]["reports_s"], r["batched"]["reports_s"]
     return (f"{label:<22} single {s:8.0f} reports/s {s * r['ch']:10.0f} meas/s | raw 1/txn {r['raw1']:8.0f} "
             f"rows/s  ratio {s / r['raw1']:5.2f} || batched({BATCH}) {b:8.0f} reports/s {b * r['ch']:10.0f} "
-            f"meas/s | raw {BATCH}/txn {r['raw_b']:8.0f} rows/s  ratio {b / r['raw_b']:5.2f}")
+            f"meas/s | raw {BATCH}/txn {r['raw_b']:8.0f} rows/s  ratio {b / r['raw_b']:5.2f} || server CPU per "
+            f"report: single {r['single']['cpu_ms_per_report']:.2f} ms, batched "
+            f"{r['batched']['cpu_ms_per_report']:.3f} ms")
 
 
 def main() -> int:
@@ -111,6 +139,8 @@ def main() -> int:
     print(f"server: {main_run['how']}, SQLite WAL, synchronous=NORMAL; {args.clients} client processes on the "
           f"same 2 cores, keep-alive, bodies encoded beforehand")
     print(line("8 nodes x 64 channels", main_run))
+    print(f"  context: raw one-row-per-measurement executemany {main_run['raw_m']:.0f} meas/s; batched HTTP "
+          f"ingest stores {main_run['batched']['reports_s'] * 64 / main_run['raw_m']:.2f} x that many measurements/s")
     for key in ("single", "batched"):
         if main_run[key]["others"]:
             print(f"  non-2xx answers ({key}): {main_run[key]['others']}")

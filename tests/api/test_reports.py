@@ -218,3 +218,16 @@ def test_a_disabled_node_is_refused(app, net):
     assert net.client.patch("/api/v1/nodes/roof-a", json={"disabled": True}, headers=net.admin).status_code == 200
     r = net.post("roof-a", _base())
     assert r.status_code == 403 and "disabled" in r.json["detail"]
+
+
+def test_reports_follow_a_new_plan_at_once(net):
+    """Ingest validates against the plan it saw last and confirms it inside the write transaction: right after
+    a PUT of a new plan, a channel only the new plan has is accepted and one it dropped is refused."""
+    net.register("roof-a")
+    assert net.post("roof-a", net.report("roof-a", {"ch0": -90.0})).status_code == 201  # the old plan is seen
+    new = {"channels": [{"id": "ch0", "center_hz": 470e6, "bandwidth_hz": 6e6},
+                        {"id": "new9", "center_hz": 900e6, "bandwidth_hz": 6e6}]}
+    assert net.plan(new)["revision"] == 2
+    assert net.post("roof-a", net.report("roof-a", {"new9": -90.0})).status_code == 201
+    r = net.post("roof-a", net.report("roof-a", {"ch1": -90.0}))
+    assert r.status_code == 422 and r.json["errors"][0]["path"] == "measurements[0].channel"

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import json
 
-from flask import Response, current_app, request
+from flask import Response, current_app, g, request
 from pydantic import BaseModel, ValidationError
 from sqlalchemy.exc import OperationalError
 from sqlalchemy.exc import TimeoutError as PoolTimeout
@@ -59,8 +59,21 @@ def read_body(model: type[BaseModel] | None = None):
         # an error; parsing the cut-off prefix would give a misleading 400. Refuse it as too large instead
         # (a chunked body of exactly the limit is refused too: the cut cannot be told from a real end).
         raise RequestEntityTooLarge()
+    if "occfuse_body" in g:  # parsed and checked once per request (a view may call this twice)
+        parsed = g.occfuse_body
+    else:
+        parsed = g.occfuse_body = _parse(raw)
+    if model is None:
+        return parsed
     try:
-        parsed = json.loads(raw, parse_constant=_reject_constant)
+        return model.model_validate_json(raw)
+    except ValidationError as exc:
+        raise _unprocessable(validation_errors(exc), "the request body") from None
+
+
+def _parse(raw: bytes):
+    try:
+        return json.loads(raw, parse_constant=_reject_constant)
     except RecursionError:
         # RFC 8259 section 9 lets a parser limit nesting; no valid request nests more than a few levels.
         raise Unprocessable("the body nests arrays or objects too deeply (hundreds of levels); a report nests "
@@ -75,12 +88,6 @@ def read_body(model: type[BaseModel] | None = None):
             raise Unprocessable("the body contains an integer with thousands of digits; no field takes one",
                                 errors=[{"path": "(body)", "message": "integer too long"}]) from None
         raise BadRequest(f"the body is not valid JSON: {exc}") from None
-    if model is None:
-        return parsed
-    try:
-        return model.model_validate_json(raw)
-    except ValidationError as exc:
-        raise _unprocessable(validation_errors(exc), "the request body") from None
 
 
 def read_query(model: type[BaseModel]):

@@ -36,6 +36,8 @@ __all__ = [
 
 # Probabilities are kept this far from 0 and 1 before taking logs (METHODS.md section 3).
 EPS = 1e-6
+# From this many samples on, clipped-LLR cumulants use the Wilson-Hilferty form of the gamma law.
+WH_MIN_SAMPLES = 50
 
 
 class SystemPerformance(NamedTuple):
@@ -429,7 +431,8 @@ def shifted_gamma_isf(q, k1, k2, k3):
 _GL_X, _GL_W = np.polynomial.legendre.leggauss(96)
 
 
-def clipped_llr_cumulants(n_samples, snr, trust=1.0, clip=np.inf, *, hypothesis=0, signal="gaussian"):
+def clipped_llr_cumulants(n_samples, snr, trust=1.0, clip=np.inf, *, hypothesis=0, signal="gaussian",
+                          method="auto"):
     """First three cumulants of one node's term ``clip(trust * l(T), -clip, clip)``.
 
     ``l(T) = T snr/(1 + snr) - N ln(1 + snr)`` is the Gaussian-signal log-likelihood
@@ -445,6 +448,11 @@ def clipped_llr_cumulants(n_samples, snr, trust=1.0, clip=np.inf, *, hypothesis=
         Law of ``T``: H0 ``Gamma(N, 1)``; H1 per ``signal``.
     signal : {"gaussian", "deterministic"}
         Under H1, ``T ~ Gamma(N, 1 + snr)`` or ``2T ~ ncx2(2N, 2 N snr)``.
+    method : {"auto", "exact"}
+        ``"exact"``: quadrature on the exact law.  ``"auto"``: for a gamma law with
+        ``N >= 50`` and a finite clip, the Wilson-Hilferty cube-root normal form of the
+        gamma law [2]_, whose moments over the clip window are closed-form (two orders of
+        magnitude faster; agreement with the exact cumulants is checked in the tests).
 
     Returns
     -------
@@ -462,14 +470,31 @@ def clipped_llr_cumulants(n_samples, snr, trust=1.0, clip=np.inf, *, hypothesis=
     .. [1] J. Ma, G. Zhao, Y. Li, "Soft combination and detection for cooperative spectrum
        sensing in cognitive radio networks," IEEE Trans. Wireless Commun.
        7(11):4502-4507, 2008.
+    .. [2] E. B. Wilson, M. M. Hilferty, "The distribution of chi-square," Proc. Natl.
+       Acad. Sci. USA 17(12):684-688, 1931.
     """
     # Input validation
     if hypothesis not in (0, 1):
         raise ValueError(f"`hypothesis` must be 0 or 1, was {hypothesis!r}")
     if signal not in ("gaussian", "deterministic"):
         raise ValueError(f"`signal` must be one of 'gaussian', 'deterministic', was {signal!r}")
+    if method not in ("auto", "exact"):
+        raise ValueError(f"`method` must be one of 'auto', 'exact', was {method!r}")
     n, g, s, c = np.broadcast_arrays(*(np.asarray(v, dtype=float) for v in (n_samples, snr, trust, clip)))
 
+    if method == "auto" and (hypothesis == 0 or signal == "gaussian"):
+        fast = (n >= WH_MIN_SAMPLES) & np.isfinite(c)
+        scale = 1.0 if hypothesis == 0 else 1.0 + g
+        if np.all(fast):
+            return _clipped_gamma_wh(n, g, s, c, scale)
+        if np.any(fast):
+            out = [np.empty(n.shape) for _ in range(3)]
+            wh = _clipped_gamma_wh(n[fast], g[fast], s[fast], c[fast], np.broadcast_to(scale, n.shape)[fast])
+            ex = clipped_llr_cumulants(n[~fast], g[~fast], s[~fast], c[~fast], hypothesis=hypothesis,
+                                       signal=signal, method="exact")
+            for o, a, b in zip(out, wh, ex):
+                o[fast], o[~fast] = a, b
+            return tuple(out)
     alpha = s * g / (1.0 + g)
     beta = s * n * np.log1p(g)
     if hypothesis == 0:
@@ -501,6 +526,52 @@ def clipped_llr_cumulants(n_samples, snr, trust=1.0, clip=np.inf, *, hypothesis=
         m.append(atoms + np.sum(wts * y**r, axis=-1))
     m1, m2, m3 = m
     k2 = np.maximum(m2 - m1**2, 0.0)
+    k3 = m3 - 3 * m1 * m2 + 2 * m1**3
+    return m1, k2, k3
+
+
+def _clipped_gamma_wh(n, g, s, c, scale):
+    """Cumulants of ``clip(s l(T), -c, c)`` for ``T ~ Gamma(n, scale)``, Wilson-Hilferty form.
+
+    ``T = scale n U^3`` with ``U ~ N(m, sd^2)``, ``m = 1 - 1/(9n)``, ``sd = 1/(3 sqrt n)``.  On
+    the clip window the term is ``k U^3 - beta``; its powers need the partial moments
+    ``I_j = E[U^j; window]``, which integration by parts gives in closed form:
+    ``I_j = m I_(j-1) + sd^2 (j-1) I_(j-2) + sd (u_a^(j-1) phi(z_a) - u_b^(j-1) phi(z_b))``.
+    """
+    alpha = s * g / (1.0 + g)
+    beta = s * n * np.log1p(g)
+    m, sd = 1.0 - 1.0 / (9.0 * n), 1.0 / (3.0 * np.sqrt(n))
+    live = alpha > 0
+    a_safe = np.where(live, alpha, 1.0)
+    k = alpha * scale * n
+    u_a = np.cbrt(np.maximum(beta - c, 0.0) / (a_safe * scale * n))
+    u_b = np.cbrt((beta + c) / (a_safe * scale * n))
+    z_a, z_b = (u_a - m) / sd, (u_b - m) / sd
+    f_lo, s_hi = special.ndtr(z_a), special.ndtr(-z_b)
+    # sd phi(z), the boundary factor; exactly 0 far out, since subnormal floats slow every later product ~100x.
+    z_a, z_b = np.clip(z_a, -30.0, 30.0), np.clip(z_b, -30.0, 30.0)
+    phi_a = np.where(np.abs(z_a) < 30.0, np.exp(-0.5 * z_a * z_a), 0.0) * (sd / np.sqrt(2 * np.pi))
+    phi_b = np.where(np.abs(z_b) < 30.0, np.exp(-0.5 * z_b * z_b), 0.0) * (sd / np.sqrt(2 * np.pi))
+    sd2 = sd * sd
+    i_prev, i_cur = None, 1.0 - f_lo - s_hi  # I_0
+    pa, pb = np.ones_like(u_a), np.ones_like(u_b)  # u^(j-1) at the window's ends
+    moments = [i_cur]
+    for j in range(1, 10):
+        i_next = m * i_cur + (pa * phi_a - pb * phi_b)
+        if j >= 2:
+            i_next = i_next + sd2 * (j - 1) * i_prev
+        i_prev, i_cur = i_cur, i_next
+        pa, pb = pa * u_a, pb * u_b
+        moments.append(i_cur)
+    i0, i3, i6, i9 = moments[0], moments[3], moments[6], moments[9]
+    lo_hi = f_lo + s_hi
+    m1 = c * (s_hi - f_lo) + k * i3 - beta * i0
+    m2 = c * c * lo_hi + k * k * i6 - 2 * k * beta * i3 + beta * beta * i0
+    m3 = c**3 * (s_hi - f_lo) + k**3 * i9 - 3 * k * k * beta * i6 + 3 * k * beta * beta * i3 - beta**3 * i0
+    # A zero-slope term is the constant clip(-beta).
+    const = np.clip(-beta, -c, c)
+    m1, m2, m3 = (np.where(live, v, const**r) for r, v in zip((1, 2, 3), (m1, m2, m3)))
+    k2 = np.maximum(m2 - m1 * m1, 0.0)
     k3 = m3 - 3 * m1 * m2 + 2 * m1**3
     return m1, k2, k3
 

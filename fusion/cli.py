@@ -84,6 +84,17 @@ def _redact(url: str) -> str:
     return make_url(url).render_as_string(hide_password=True)
 
 
+def _warn_settings(app):
+    """Print the settings warnings (e.g. a design SNR below the SNR wall) to standard error."""
+    from .settings import get_settings, settings_dict, settings_warnings
+
+    with _sessions(app)() as session:
+        values = settings_dict(get_settings(session, app.config))
+        session.commit()
+    for text in settings_warnings(values, app.config):
+        click.echo(f"warning: {text}", err=True)
+
+
 # --- serving ----------------------------------------------------------------------------------------------
 
 @cli.command()
@@ -98,6 +109,7 @@ def serve(host, port):
     if not app.config.get("ADMIN_TOKEN"):
         click.echo("warning: OCCFUSE_ADMIN_TOKEN is not set; admin routes (nodes, plan, fusion) are refused",
                    err=True)
+    _warn_settings(app)
     server = LiveServer(app, host, port)
 
     def stop(signum, _frame):
@@ -194,6 +206,7 @@ def free(min_confidence, as_json):
 
     app = _app()
     _ensure_schema(app)
+    _warn_settings(app)
     with _sessions(app)() as session:
         out = free_channels(session, min_confidence)
     if as_json:

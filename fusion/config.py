@@ -33,6 +33,8 @@ DEFAULTS: dict[str, Any] = {
     # scheduler
     "SCHEDULER_ENABLED": False,  # create_app never starts threads; `occfuse serve` turns this on
     "LOG_LEVEL": "INFO",
+    # detection: how well the nodes know their noise floor, in dB (0 = not stated; see README, "SNR wall")
+    "NOISE_UNCERTAINTY_DB": 0.0,
     # initial fusion settings of a new database (see module docstring)
     "INTERVAL_S": 10.0,
     "RULE": "weighted_llr",  # see README, "Choosing a rule"
@@ -116,4 +118,7 @@ def load_settings(config_file: str | os.PathLike | None = None,
     if overrides:
         for key, value in overrides.items():
             settings[key] = _coerce(key, value, "configuration") if key in DEFAULTS else value
+    x = settings["NOISE_UNCERTAINTY_DB"]
+    if not (x >= 0 and x < 20):  # also refuses NaN
+        raise ConfigError(f"NOISE_UNCERTAINTY_DB must be in [0, 20) dB, was {x!r}")
     return settings

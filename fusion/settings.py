@@ -8,11 +8,12 @@ from pydantic import ValidationError
 from sqlalchemy.orm import Session
 
 from .api.schemas import FusionSettingsIn
+from .detection.energy import check_snr_wall
 from .errors import ConfigError, Unprocessable
 from .models import FusionSettings, utcnow
 from .plan import error_path
 
-__all__ = ["get_settings", "update_settings", "settings_dict", "check_settings"]
+__all__ = ["get_settings", "update_settings", "settings_dict", "check_settings", "settings_warnings"]
 
 _FIELDS = ("rule", "k", "target_pf", "min_nodes", "window_s", "max_age_s", "interval_s", "confidence", "prior",
            "snr_db")
@@ -31,6 +32,12 @@ def check_settings(values: Mapping[str, Any]) -> list[dict]:
         errors.append({"path": "window_s", "message": f"window_s ({values['window_s']:g}) cannot exceed "
                        f"max_age_s ({values['max_age_s']:g}): older reports are no evidence"})
     return errors
+
+
+def settings_warnings(values: Mapping[str, Any], config: Mapping[str, Any]) -> list[str]:
+    """Advice about settings that are valid but cannot do what they promise (shown by the API and CLI)."""
+    wall = check_snr_wall(values["snr_db"], config.get("NOISE_UNCERTAINTY_DB", 0.0))
+    return [f"snr_db: {wall.message}"] if wall.below_wall else []
 
 
 def get_settings(session: Session, config: Mapping[str, Any]) -> FusionSettings:

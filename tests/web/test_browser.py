@@ -175,3 +175,10 @@ def test_with_a_read_token_the_page_asks_for_it_and_keeps_it_in_session_storage(
         page.wait_for_selector("#band .cell")
         assert READER not in page.evaluate("document.documentElement.outerHTML")
         assert ADMIN not in page.evaluate("document.documentElement.outerHTML")
+
+
+@pytest.mark.parametrize("ci, outcome", [("true", pytest.fail.Exception), ("", pytest.skip.Exception)])
+def test_a_missing_browser_fails_under_ci_and_skips_elsewhere(monkeypatch, ci, outcome):
+    monkeypatch.setenv("CI", ci)
+    with pytest.raises(outcome, match="no Chromium"):
+        _unavailable("no Chromium at /nowhere")

@@ -26,6 +26,7 @@
     history: new Map(),       // channel id -> [{t, state}], oldest first, the last hour
     minutes: 60,
     timer: null,
+    busy: false,
     polls: 0,
   };
 
@@ -279,7 +280,9 @@
 
   async function poll() {
     clearTimeout(view.timer);
+    if (view.busy) return;  // one poll loop at a time (a token submit can come in mid-poll)
     if (view.locked && !view.token) return showAuth();
+    view.busy = true;
     try {
       const [channels, nodes, fusion] = await Promise.all([
         getJSON(URLS.channels), getJSON(URLS.nodes), getJSON(URLS.fusion)]);
@@ -301,6 +304,8 @@
       } else {
         setStatus("error", "connection lost · retrying");
       }
+    } finally {
+      view.busy = false;
     }
     view.timer = setTimeout(poll, pollPeriodMs());
   }

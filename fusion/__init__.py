@@ -11,7 +11,7 @@ __all__ = ["create_app"]
 
 def create_app(test_config: dict | None = None) -> Flask:
     """Build the Flask app. Starts no threads: `occfuse serve` starts the scheduler itself."""
-    from . import api, db
+    from . import api, db, web
     from .config import load_settings
 
     app = Flask(__name__)
@@ -24,4 +24,6 @@ def create_app(test_config: dict | None = None) -> Flask:
     db.init_app(app)
     # The API: errors, auth, blueprints.
     api.init_app(app)
+    # The dashboard page at /, a reader of the same API.
+    web.init_app(app)
     return app

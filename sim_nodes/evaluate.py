@@ -298,23 +298,65 @@ def _prepare(spec, setup, target_pf):
     return _Prepared(spec, k, plus, minus, g / (1 + g), n * np.log1p(g), g)
 
 
-def rule_statistic(prep, t, pvals, target_pf):
+class Draws:
+    """One configuration's reported energies ``t`` (n_nodes, m), with the order statistics rules need.
+
+    Votes at local Pf ``c`` are ``gammaincc(N, T) < c``, i.e. ``T > gammainccinv(N, c)``.  The counting
+    rules' statistic is the k-th smallest p-value; when every node has the same ``N`` the k-th largest ``T``
+    orders trials the same way, so it is used instead (no ``gammaincc`` per node and trial).
+    """
+
+    def __init__(self, t, n_samples):
+        self.t = t
+        self.n = np.asarray(n_samples, float)
+        self.equal_n = bool(np.all(self.n == self.n[0]))
+        self._sorted = None
+
+    def kth(self, k):
+        """k-th largest ``T`` (equal ``N``) or minus the log of the k-th smallest p-value, shape (m,)."""
+        if self._sorted is None:
+            if self.equal_n:
+                self._sorted = -np.sort(-self.t, axis=0)  # descending T
+            else:
+                with np.errstate(divide="ignore"):
+                    self._sorted = -np.log(np.sort(special.gammaincc(self.n[:, None], self.t), axis=0))
+        return self._sorted[k - 1]
+
+    def votes(self, local_pf):
+        return self.t > energy.threshold(local_pf, self.n)[:, None]
+
+
+def _count_threshold(setup, local_pf):
+    """Threshold on :meth:`Draws.kth` equivalent to votes at local Pf ``local_pf``."""
+    if np.all(setup.n_samples == setup.n_samples[0]):
+        return energy.threshold(local_pf, setup.n_samples[0])
+    return -np.log(local_pf)
+
+
+def _count_local_pf(setup, thr):
+    """Inverse of :func:`_count_threshold`."""
+    thr = np.asarray(thr, float)
+    if np.all(setup.n_samples == setup.n_samples[0]):
+        return special.gammaincc(setup.n_samples[0], thr)
+    with np.errstate(over="ignore"):
+        return np.exp(-thr)
+
+
+def rule_statistic(prep, draws, target_pf):
     """One statistic per trial (larger = more occupied), shape (m,); see the module docstring."""
-    rule = prep.spec.rule
+    rule, t = prep.spec.rule, draws.t
     if rule in _COUNTING:
-        kth = np.partition(pvals, prep.k - 1, axis=0)[prep.k - 1]
-        with np.errstate(divide="ignore"):
-            return -np.log(kth)
+        return draws.kth(prep.k)
     if rule == "chair_varshney":
-        votes = pvals < target_pf
+        votes = draws.votes(target_pf)
         return np.where(votes, prep.cv_plus[:, None], prep.cv_minus[:, None]).sum(axis=0)
     if rule == "egc":
         return t.sum(axis=0)
     if rule == "mrc":
-        return (t * prep.g[:, None]).sum(axis=0)
-    term = t * prep.a[:, None] - prep.b[:, None]
+        return prep.g @ t
     if rule == "llr":
-        return term.sum(axis=0)
+        return prep.a @ t - prep.b.sum()
+    term = t * prep.a[:, None] - prep.b[:, None]
     return np.clip(term, -rules.DEFAULT_CLIP, rules.DEFAULT_CLIP).sum(axis=0)  # weighted_llr, trust 1
 
 
@@ -322,7 +364,8 @@ def target_threshold(spec, setup, target_pf):
     """The threshold on :func:`rule_statistic` at which ``fuse`` decides occupied (``stat > thr``)."""
     n = setup.n_nodes
     if spec.rule in _COUNTING:
-        return -math.log(float(system.local_false_alarm(spec.rule, np.array(n), target_pf, spec.k)))
+        return float(_count_threshold(setup, float(system.local_false_alarm(spec.rule, np.array(n), target_pf,
+                                                                            spec.k))))
     res = rules.fuse(np.ones((n, 1)), setup.n_samples, rule=spec.rule, target_pf=target_pf, k=spec.k,
                      snr=setup.snr)
     thr = float(res.threshold[0])
@@ -374,8 +417,7 @@ def analytic_rates(prep, setup, thresholds, target_pf):
     thr = np.atleast_1d(np.asarray(thresholds, dtype=float))
     rule = prep.spec.rule
     if rule in _COUNTING:
-        with np.errstate(over="ignore"):
-            c = np.clip(np.exp(-thr), 1e-300, 1.0)
+        c = np.clip(_count_local_pf(setup, thr), 1e-300, 1.0)
         rates = _vote_rates(setup, c)
         if rates is None:
             return None
@@ -434,7 +476,10 @@ def _pf_grid(m):
 
 
 def _rate(s, thr):
-    return np.mean(s[:, None] > np.atleast_1d(thr)[None, :], axis=0) if s.size else np.full(np.size(thr), np.nan)
+    """Fraction of ``s`` above each threshold."""
+    if not s.size:
+        return np.full(np.size(thr), np.nan)
+    return 1.0 - np.searchsorted(np.sort(s), np.atleast_1d(thr), side="right") / s.size
 
 
 @dataclass
@@ -444,14 +489,13 @@ class _Chunks:
     s0: dict = field(default_factory=dict)  # label -> list of arrays under H0
     s1: dict = field(default_factory=dict)
     fals: dict = field(default_factory=dict)  # (label, count) -> (list H0, list H1)
-    kth1: list = field(default_factory=list)  # sorted p-values under H1, for the optimal k
-    kth0: list = field(default_factory=list)
+    kcount: np.ndarray | None = None  # H1 trials decided occupied by each k-of-n at the target Pf
     calib_t: list = field(default_factory=list)
     calib_y: list = field(default_factory=list)
     done: int = 0
 
 
-def evaluate(setup, specs, *, trials=20_000, target_pf=0.1, seed=0, falsify_mode="free", calib_trials=2000,
+def evaluate(setup, specs, *, trials=20_000, target_pf=0.1, seed=0, falsify_mode="free", calib_trials=1000,
              progress=None, chunk=_CHUNK):
     """Evaluate ``specs`` (RuleSpecs) on ``setup``; the JSON-ready report (README "Evaluating rules").
 
@@ -490,31 +534,32 @@ def evaluate(setup, specs, *, trials=20_000, target_pf=0.1, seed=0, falsify_mode
 
 
 def _run_chunk(acc, setup, fals_setups, preps, ref_preps, m, target_pf, ref_pf, rng, n_calib):
-    n = setup.n_samples[:, None]
     t0, t1 = _draw(setup, m, False, rng), _draw(setup, m, True, rng)
-    p0, p1 = special.gammaincc(n, t0), special.gammaincc(n, t1)
-    # Every lie a falsifier could tell in this chunk, drawn once; configuration f uses the first f of them.
-    lies0 = _draw(fals_setups[-1], m, False, rng)
-    lies1 = _draw(fals_setups[-1], m, True, rng)
+    d0, d1 = Draws(t0, setup.n_samples), Draws(t1, setup.n_samples)
     for prep, rprep in zip(preps, ref_preps):
         lab = prep.spec.label
         for key, pr, pf_ in ((lab, prep, target_pf), (("ref", lab), rprep, ref_pf)):
-            acc.s0.setdefault(key, []).append(rule_statistic(pr, t0, p0, pf_))
-            acc.s1.setdefault(key, []).append(rule_statistic(pr, t1, p1, pf_))
+            acc.s0.setdefault(key, []).append(rule_statistic(pr, d0, pf_))
+            acc.s1.setdefault(key, []).append(rule_statistic(pr, d1, pf_))
+    # A falsifier's report does not depend on what is on the air, so one set of lies per chunk serves
+    # both hypotheses; configuration f uses the lies of its first f falsifiers.
+    lies = _draw(fals_setups[-1], m, False, rng) if len(fals_setups) > 1 else None
     changed = np.zeros(setup.n_nodes, bool)
-    pl0 = pl1 = None
     for f, fs in enumerate(fals_setups[1:], start=1):
-        if pl0 is None:
-            pl0, pl1 = special.gammaincc(n, lies0), special.gammaincc(n, lies1)
         changed |= np.array([a != b for a, b in zip(fs.falsify, setup.falsify)])
-        tf0, tf1 = np.where(changed[:, None], lies0, t0), np.where(changed[:, None], lies1, t1)
-        pf0, pf1 = np.where(changed[:, None], pl0, p0), np.where(changed[:, None], pl1, p1)
+        f0 = Draws(np.where(changed[:, None], lies, t0), setup.n_samples)
+        f1 = Draws(np.where(changed[:, None], lies, t1), setup.n_samples)
         for prep in preps:
             lists = acc.fals.setdefault((prep.spec.label, f), ([], []))
-            lists[0].append(rule_statistic(prep, tf0, pf0, target_pf))
-            lists[1].append(rule_statistic(prep, tf1, pf1, target_pf))
-    acc.kth0.append(np.sort(p0, axis=0))
-    acc.kth1.append(np.sort(p1, axis=0))
+            lists[0].append(rule_statistic(prep, f0, target_pf))
+            lists[1].append(rule_statistic(prep, f1, target_pf))
+    # Optimal k: Pd at the target Pf of every k-of-n, counted here.
+    n = setup.n_nodes
+    ks = np.arange(1, n + 1)
+    p_loc = special.betaincinv(ks, n - ks + 1, target_pf)  # system.local_false_alarm for each k
+    thr = _count_threshold(setup, p_loc)
+    counts = np.array([np.count_nonzero(d1.kth(k) > thr[k - 1]) for k in ks])
+    acc.kcount = counts if acc.kcount is None else acc.kcount + counts
     if n_calib:
         acc.calib_t.append(np.hstack([t0[:, :n_calib], t1[:, :n_calib]]))
         acc.calib_y.extend([0] * n_calib + [1] * n_calib)
@@ -627,12 +672,11 @@ def _calibration(spec, setup, calib_t, calib_y, target_pf):
 def _optimal_k(setup, acc, target_pf):
     """Pd at the target Pf for every k (MC and binomial), the best k, and Zhang's k."""
     n = setup.n_nodes
-    if not acc.kth1:
+    if acc.kcount is None:
         return None
-    p1 = np.hstack(acc.kth1)
     ks = np.arange(1, n + 1)
     p_loc = special.betaincinv(ks, n - ks + 1, target_pf)  # system.local_false_alarm for each k
-    mc = [float(np.mean(p1[k - 1] < p_loc[k - 1])) for k in ks]
+    mc = (acc.kcount / acc.done).tolist()
     rates = _vote_rates(setup, p_loc)
     analytic = None
     if rates is not None:

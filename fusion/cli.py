@@ -1,4 +1,5 @@
-"""The ``occfuse`` command: thin wrappers over plain functions (registry, plan, decisions, server, demo)."""
+"""The ``occfuse`` command: thin wrappers over plain functions (registry, plan, decisions, server, demo,
+evaluate, replay)."""
 
 from __future__ import annotations
 
@@ -297,6 +298,56 @@ def evaluate(scenario, channel, nodes, snr_db, samples, fading, nakagami_m, sign
     if not report["complete"]:
         click.echo(f"interrupted: results cover {report['trials']} of {report['trials_requested']} trials", err=True)
         sys.exit(130)
+
+
+@cli.command()
+@click.option("--rules", "rule_list", required=True, help="Comma-separated rules to replay; k_of_n:K sets k.")
+@click.option("--k", "default_k", type=click.IntRange(1), default=2, show_default=True, help="k for a bare k_of_n.")
+@click.option("--since", help="First epoch time to replay (RFC 3339); default: the oldest stored.")
+@click.option("--until", help="Last epoch time to replay (RFC 3339); default: the newest stored.")
+@click.option("--truth", "truth_path", type=click.Path(exists=True, dir_okay=False),
+              help="A sim_nodes ground-truth log (JSONL) to score every rule and the service against.")
+@click.option("--grace", "grace_s", type=click.FloatRange(0), default=0.0, show_default=True,
+              help="Seconds before a decision within which a matching true state still counts.")
+@click.option("--json", "as_json", is_flag=True, help="Print the result as JSON, nothing else.")
+def replay(rule_list, default_k, since, until, truth_path, grace_s, as_json):
+    """Re-run stored reports through other rules and compare with what the service decided (writes nothing)."""
+    from datetime import datetime, timezone
+
+    from .replay import parse_rule_list, read_truth_log, summary_lines
+    from .replay import replay as run_replay
+
+    def when(text, name):
+        if text is None:
+            return None
+        try:
+            t = datetime.fromisoformat(text.replace("Z", "+00:00"))
+        except ValueError:
+            raise click.BadParameter(f"must be an RFC 3339 time such as 2026-12-01T21:00:00Z, was {text!r}",
+                                     param_hint=name) from None
+        return t if t.tzinfo else t.replace(tzinfo=timezone.utc)
+
+    try:
+        specs = parse_rule_list(rule_list, default_k)
+    except ValueError as exc:
+        raise click.BadParameter(str(exc), param_hint="--rules") from None
+    t0, t1 = when(since, "--since"), when(until, "--until")
+    truth = None
+    if truth_path:
+        try:
+            truth = read_truth_log(truth_path)
+        except ValueError as exc:
+            raise click.BadParameter(str(exc), param_hint="--truth") from None
+    app = _app()
+    _ensure_schema(app)
+    with _sessions(app)() as session:
+        result = run_replay(session, app.config, specs, since=t0, until=t1, truth=truth, grace_s=grace_s)
+        session.rollback()  # replay only reads; make sure nothing could be flushed
+    if as_json:
+        click.echo(json.dumps(result.as_dict(), indent=2))
+    else:
+        for line in summary_lines(result):
+            click.echo(line)
 
 
 def _optional_commands() -> None:

@@ -109,7 +109,8 @@ class RuleTally:
     """One rule's decisions over the replayed channel-epochs.
 
     ``versus_service[a][b]``: channel-epochs the service published as ``a`` and this rule as ``b``.  With a
-    ground truth: ``scored`` channel-epochs, ``correct`` (state equals the truth at the decision, or within
+    ground truth: ``per_channel[c]``: how often the rule published each state on channel ``c`` and how
+    often that differed from the service; ``scored`` channel-epochs, ``correct`` (state equals the truth at the decision, or within
     the grace window before it), ``missed`` (said free while the channel was occupied throughout the grace
     window), ``false_alarms`` (said occupied while it was free throughout), ``unknown``.
     """
@@ -120,6 +121,7 @@ class RuleTally:
     decisions: int = 0
     agree: int = 0
     versus_service: dict = field(default_factory=lambda: {a: {b: 0 for b in STATES} for a in STATES})
+    per_channel: dict = field(default_factory=dict)  # channel -> {"free": n, "occupied": n, "unknown": n, "differ": n}
     scored: int = 0
     correct: int = 0
     missed: int = 0
@@ -129,7 +131,7 @@ class RuleTally:
     def as_dict(self, with_truth: bool) -> dict:
         d = {"rule": self.rule, "k": self.k, "label": self.label, "decisions": self.decisions,
              "agree_with_service": self.agree, "differ_from_service": self.decisions - self.agree,
-             "versus_service": self.versus_service}
+             "versus_service": self.versus_service, "per_channel": self.per_channel}
         if with_truth:
             d["truth"] = {"scored": self.scored, "accuracy": self.correct / self.scored if self.scored else None,
                           "missed_detections": self.missed, "false_alarms": self.false_alarms,
@@ -216,6 +218,10 @@ def replay(session: Session, config: Mapping[str, Any], rule_specs, *, since: da
             if cid in stored:
                 _score(service, truth, cid, ep.started_at, stored[cid], grace_s)
                 service.decisions += 1
+                service.agree += 1
+                pc = service.per_channel.setdefault(cid, {"free": 0, "occupied": 0, "unknown": 0, "differ": 0})
+                pc[stored[cid]] += 1
+                service.versus_service[stored[cid]][stored[cid]] += 1
         for i, (tally, (rule, k)) in enumerate(zip(tallies, rule_specs)):
             rev, model, tracker = learners.get(i, (None, None, None))
             if rev != ep.plan_revision:  # a new plan revision starts the learners afresh, as the service does
@@ -232,9 +238,12 @@ def replay(session: Session, config: Mapping[str, Any], rule_specs, *, since: da
             for j, cid in enumerate(ids):
                 state = str(fused.states[j])
                 tally.decisions += 1
+                pc = tally.per_channel.setdefault(cid, {"free": 0, "occupied": 0, "unknown": 0, "differ": 0})
+                pc[state] += 1
                 if cid in stored:
                     tally.versus_service[stored[cid]][state] += 1
                     tally.agree += stored[cid] == state
+                    pc["differ"] += stored[cid] != state
                 _score(tally, truth, cid, ep.started_at, state, grace_s)
     return ReplayResult(since, until, len(epochs), tallies, service, truth is not None)
 

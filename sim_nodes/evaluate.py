@@ -498,7 +498,7 @@ class _Chunks:
 
 
 def evaluate(setup, specs, *, trials=20_000, target_pf=0.1, seed=0, falsify_mode="free", calib_trials=1000,
-             progress=None, chunk=_CHUNK):
+             progress=None, chunk=None):
     """Evaluate ``specs`` (RuleSpecs) on ``setup``; the JSON-ready report (README "Evaluating rules").
 
     ``progress(done, total)`` is called as chunks finish.  A KeyboardInterrupt stops the drawing; the
@@ -511,6 +511,7 @@ def evaluate(setup, specs, *, trials=20_000, target_pf=0.1, seed=0, falsify_mode
         raise ValueError(f"`target_pf` must lie in (0, 1), was {target_pf!r}")
     if falsify_mode not in ("free", "occupied"):
         raise ValueError(f"`falsify_mode` must be 'free' or 'occupied', was {falsify_mode!r}")
+    chunk = int(chunk or _CHUNK)
     ref_pf = REFERENCE["pf"]
     preps = [_prepare(s, setup, target_pf) for s in specs]
     ref_preps = [_prepare(s, setup, ref_pf) for s in specs]

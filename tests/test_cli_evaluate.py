@@ -86,3 +86,26 @@ def test_replay_refuses_a_file_that_is_not_a_truth_log(runner, tmp_path):
     f.write_text("not json\n")
     r = runner.invoke(cli, ["replay", "--rules", "egc", "--truth", str(f)])
     assert r.exit_code == 2 and "ground-truth" in r.output
+
+
+def test_ctrl_c_during_evaluate_still_writes_the_partial_results(runner, tmp_path, monkeypatch):
+    """Ctrl-C (KeyboardInterrupt) after the first chunk of trials: files written, marked incomplete, exit 130."""
+    from sim_nodes import evaluate as ev
+
+    real, calls = ev._run_chunk, []
+
+    def interrupted(*args, **kwargs):
+        calls.append(1)
+        if len(calls) > 1:
+            raise KeyboardInterrupt
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(ev, "_run_chunk", interrupted)
+    monkeypatch.setattr(ev, "_CHUNK", 500)
+    out = tmp_path / "partial"
+    r = runner.invoke(cli, ["evaluate", "--nodes", "3", "--snr-db", "-10", "--samples", "100", "--trials", "5000",
+                            "--rules", "or,egc", "--out", str(out)])
+    assert r.exit_code == 130
+    report = json.loads((out / "evaluate.json").read_text())
+    assert report["complete"] is False and report["trials"] == 500
+    assert (out / "roc.png").exists() and "INTERRUPTED" in r.stdout

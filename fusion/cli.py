@@ -55,8 +55,14 @@ def cli(config_file):
     """occfuse: fuse many sensor nodes' channel energy into free / occupied / unknown, with a probability."""
     if config_file:
         os.environ["OCCFUSE_CONFIG"] = config_file
-    logging.basicConfig(level=logging.WARNING, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
-    logging.getLogger("fusion").setLevel(logging.INFO)
+    from .config import load_settings
+    from .logs import setup_logging
+
+    try:
+        settings = load_settings()
+    except OccfuseError:  # the command itself reports the bad setting
+        settings = {"LOG_FORMAT": "text", "LOG_LEVEL": "INFO"}
+    setup_logging(settings["LOG_FORMAT"], settings["LOG_LEVEL"])
 
 
 # --- database ---------------------------------------------------------------------------------------------
@@ -89,15 +95,45 @@ def _redact(url: str) -> str:
 @cli.command()
 @click.option("--host", default="127.0.0.1", show_default=True)
 @click.option("--port", default=8080, show_default=True, type=click.IntRange(0, 65535))
-def serve(host, port):
+@click.option("--workers", default=1, show_default=True, type=click.IntRange(1, 64), envvar="OCCFUSE_WORKERS",
+              help="Processes; more than 1 runs gunicorn, and one worker at a time (the lease holder) runs the "
+                   "epochs.")
+@click.option("--threads", default=4, show_default=True, type=click.IntRange(1, 64),
+              help="Threads per gunicorn worker (with --workers > 1).")
+def serve(host, port, workers, threads):
     """Upgrade the database if needed, then serve the API and run the fusion epochs."""
+    metrics_dir = None
+    if workers > 1 and not os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
+        # Before anything imports prometheus_client: the workers inherit it and share the counters' files.
+        import tempfile
+
+        metrics_dir = tempfile.mkdtemp(prefix="occfuse-metrics-")
+        os.environ["PROMETHEUS_MULTIPROC_DIR"] = metrics_dir
+    try:
+        app = _app()
+        _ensure_schema(app)
+        if not app.config.get("ADMIN_TOKEN"):
+            click.echo("warning: OCCFUSE_ADMIN_TOKEN is not set; admin routes (nodes, plan, fusion) are refused",
+                       err=True)
+        database = _redact(app.config["DATABASE_URL"])
+        if workers > 1:
+            from .workers import GunicornServer, options
+
+            app.extensions["occfuse.engine"].dispose()  # never carry pooled connections across fork
+            click.echo(f"occfuse starting {workers} workers (database {database})")
+            GunicornServer(options(host, port, workers, threads)).run()
+            return
+        _serve_one(app, host, port, database)
+    finally:
+        if metrics_dir is not None:
+            import shutil
+
+            shutil.rmtree(metrics_dir, ignore_errors=True)
+
+
+def _serve_one(app, host, port, database) -> None:
     from .server import LiveServer
 
-    app = _app()
-    _ensure_schema(app)
-    if not app.config.get("ADMIN_TOKEN"):
-        click.echo("warning: OCCFUSE_ADMIN_TOKEN is not set; admin routes (nodes, plan, fusion) are refused",
-                   err=True)
     server = LiveServer(app, host, port)
 
     def stop(signum, _frame):
@@ -106,7 +142,7 @@ def serve(host, port):
 
     signal.signal(signal.SIGTERM, stop)
     signal.signal(signal.SIGINT, stop)
-    click.echo(f"occfuse serving on {server.url} (database {_redact(app.config['DATABASE_URL'])})")
+    click.echo(f"occfuse serving on {server.url} (database {database})")
     server.serve_forever()
     server._server.server_close()
 

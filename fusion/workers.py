@@ -22,9 +22,10 @@ _SCHEDULER = {}  # per worker process: its FusionScheduler
 
 def options(host: str, port: int, workers: int, threads: int) -> dict:
     """gunicorn settings for `workers` processes of `threads` threads each (gthread: threads cover DB waits)."""
+    # No control socket: its default path is per user, so two servers on one host would fight over it.
     return {"bind": f"[{host}]:{port}" if ":" in host else f"{host}:{port}", "workers": workers,
             "worker_class": "gthread", "threads": threads, "timeout": 60, "graceful_timeout": 20,
-            "keepalive": 5, "preload_app": False, "post_worker_init": _post_worker_init,
+            "keepalive": 5, "preload_app": False, "control_socket_disable": True, "post_worker_init": _post_worker_init,
             "worker_exit": _worker_exit, "child_exit": _child_exit, "when_ready": _when_ready}
 
 

@@ -15,8 +15,8 @@ import os
 import time
 
 from flask import Blueprint, Response, current_app, g, request
-from prometheus_client import (CONTENT_TYPE_LATEST, CollectorRegistry, Counter, Histogram, REGISTRY,
-                               generate_latest, multiprocess)
+from prometheus_client import REGISTRY, CollectorRegistry, Counter, Histogram, multiprocess
+from prometheus_client.exposition import choose_encoder
 from prometheus_client.core import GaugeMetricFamily
 from sqlalchemy import func, select
 
@@ -90,25 +90,26 @@ def _registry():
 @bp.get("/metrics")
 @role("reader")
 def metrics():
+    encoder, content_type = choose_encoder(request.headers.get("Accept"))  # text 0.0.4 unless asked otherwise
     registry = _registry()
     collector = DatabaseCollector(current_app.extensions["occfuse.sessions"])
     if registry is REGISTRY:
-        out = generate_latest(registry) + generate_latest(_Only(collector))
+        out = encoder(_Combined(registry, collector))  # the DB gauges never enter the global registry
     else:
         registry.register(collector)
-        out = generate_latest(registry)
-    return Response(out, mimetype=CONTENT_TYPE_LATEST.split(";")[0],
-                    headers={"Content-Type": CONTENT_TYPE_LATEST})
+        out = encoder(registry)
+    return Response(out, content_type=content_type)
 
 
-class _Only:
-    """A one-collector registry-like object for generate_latest (keeps the DB gauges out of REGISTRY)."""
+class _Combined:
+    """Collectors read together, as one registry-like object for an encoder (one ``# EOF`` in OpenMetrics)."""
 
-    def __init__(self, collector):
-        self._collector = collector
+    def __init__(self, *collectors):
+        self._collectors = collectors
 
     def collect(self):
-        return self._collector.collect()
+        for collector in self._collectors:
+            yield from collector.collect()
 
 
 def init_app(app) -> None:

@@ -84,6 +84,18 @@ def db_upgrade(revision):
     click.echo(f"database {_redact(url)} is at {revision}")
 
 
+@db.command("backup")
+@click.argument("target", type=click.Path(dir_okay=False))
+def db_backup(target):
+    """Copy the SQLite database to TARGET with SQLite's online backup API (safe while serving)."""
+    from .config import load_settings
+    from .db import backup_sqlite
+
+    url = load_settings()["DATABASE_URL"]
+    pages = backup_sqlite(url, target)
+    click.echo(f"database {_redact(url)} copied to {target} ({pages} pages)")
+
+
 def _redact(url: str) -> str:
     from sqlalchemy.engine import make_url
 

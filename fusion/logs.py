@@ -9,6 +9,7 @@ from __future__ import annotations
 import json
 import logging
 import re
+import sys
 from datetime import datetime, timezone
 
 __all__ = ["JsonFormatter", "RedactTokens", "TEXT_FORMAT", "formatter", "redact", "setup_logging"]
@@ -62,10 +63,22 @@ def formatter(fmt: str) -> logging.Formatter:
     return JsonFormatter() if fmt == "json" else _RedactingText(TEXT_FORMAT)
 
 
+class _StderrHandler(logging.StreamHandler):
+    """Writes to whatever ``sys.stderr`` is at the time (test runners swap it and close the old one)."""
+
+    @property
+    def stream(self):
+        return sys.stderr
+
+    @stream.setter
+    def stream(self, _value):
+        pass
+
+
 def setup_logging(fmt: str = "text", level: str = "INFO") -> None:
     """Send warnings from everything and `level` from ``fusion.*`` to stderr, as text or JSON lines."""
     root = logging.getLogger()
-    handler = logging.StreamHandler()
+    handler = _StderrHandler()
     handler.setFormatter(formatter(fmt))
     handler.addFilter(RedactTokens())
     for old in list(root.handlers):

@@ -114,7 +114,7 @@ def _redact(url: str) -> str:
               help="Threads per gunicorn worker (with --workers > 1).")
 def serve(host, port, workers, threads):
     """Upgrade the database if needed, then serve the API and run the fusion epochs."""
-    metrics_dir = None
+    metrics_dir, master_pid = None, os.getpid()
     if workers > 1 and not os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
         # Before anything imports prometheus_client: the workers inherit it and share the counters' files.
         import tempfile
@@ -137,7 +137,8 @@ def serve(host, port, workers, threads):
             return
         _serve_one(app, host, port, database)
     finally:
-        if metrics_dir is not None:
+        # gunicorn workers are forked inside run() and unwind through here too: only the master cleans up.
+        if metrics_dir is not None and os.getpid() == master_pid:
             import shutil
 
             shutil.rmtree(metrics_dir, ignore_errors=True)

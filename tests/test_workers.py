@@ -121,7 +121,9 @@ def test_two_workers_one_leader_and_takeover_after_sigkill(db_url, tmp_path):
         _, first = out.wait_for(_lease_taken, 60)
         admin = {"Authorization": f"Bearer {ADMIN}"}
         with httpx.Client(base_url=url, timeout=20) as http:
-            assert http.put("/api/v1/plan", json=PLAN, headers=admin).status_code == 200
+            r = http.put("/api/v1/plan", json=PLAN, headers=admin)
+            out.drain()
+            assert r.status_code == 200, (r.text, "\n".join(out.lines[-40:]))
             token = http.post("/api/v1/nodes", json={"name": "n1"}, headers=admin).json()["token"]
             node = {"Authorization": f"Bearer {token}"}
             for seq in range(1, 7):
@@ -145,6 +147,7 @@ def test_two_workers_one_leader_and_takeover_after_sigkill(db_url, tmp_path):
         assert [p for p in map(_lease_taken, out.lines) if p] == [first]
 
         os.kill(first, signal.SIGKILL)
+        out.drain()
         killed_at = len(out.lines)
         t_kill = time.monotonic()
         j, second = out.wait_for(_lease_taken, 60, start=killed_at)
@@ -152,9 +155,13 @@ def test_two_workers_one_leader_and_takeover_after_sigkill(db_url, tmp_path):
         assert second != first
         k, _ = out.wait_for(lambda l: (e := _epoch_pid(l)) and e[1] == second, 60, start=j)
         out.wait_for(lambda l: (e := _epoch_pid(l)) and e[1] == second, 60, start=k + 1)
-        after = [e for e in map(_epoch_pid, out.lines[killed_at:]) if e]
+        # Lines reach us through one pipe in the order they were written, and the first leader was dead before
+        # the second took the lease, so: only `first` before the takeover line, only `second` after it.
+        before = [e for e in map(_epoch_pid, out.lines[:j]) if e]
+        after = [e for e in map(_epoch_pid, out.lines[j:]) if e]
+        assert {pid for _, pid in before} == {first}
         assert {pid for _, pid in after} == {second}  # the dead leader ran nothing more, nobody ran alongside
-        ids = [eid for eid, _ in before_kill + after]
+        ids = [eid for eid, _ in before + after]
         assert ids == sorted(set(ids))  # each epoch logged once, in order
         health = httpx.get(f"{url}/healthz", timeout=20)
         assert health.status_code == 200 and health.json()["ready"] is True

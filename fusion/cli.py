@@ -56,8 +56,14 @@ def cli(config_file):
     """occfuse: fuse many sensor nodes' channel energy into free / occupied / unknown, with a probability."""
     if config_file:
         os.environ["OCCFUSE_CONFIG"] = config_file
-    logging.basicConfig(level=logging.WARNING, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
-    logging.getLogger("fusion").setLevel(logging.INFO)
+    from .config import load_settings
+    from .logs import setup_logging
+
+    try:
+        settings = load_settings()
+    except OccfuseError:  # the command itself reports the bad setting
+        settings = {"LOG_FORMAT": "text", "LOG_LEVEL": "INFO"}
+    setup_logging(settings["LOG_FORMAT"], settings["LOG_LEVEL"])
 
 
 # --- database ---------------------------------------------------------------------------------------------
@@ -77,6 +83,18 @@ def db_upgrade(revision):
     url = load_settings()["DATABASE_URL"]
     upgrade(url, revision)
     click.echo(f"database {_redact(url)} is at {revision}")
+
+
+@db.command("backup")
+@click.argument("target", type=click.Path(dir_okay=False))
+def db_backup(target):
+    """Copy the SQLite database to TARGET with SQLite's online backup API (safe while serving)."""
+    from .config import load_settings
+    from .db import backup_sqlite
+
+    url = load_settings()["DATABASE_URL"]
+    pages = backup_sqlite(url, target)
+    click.echo(f"database {_redact(url)} copied to {target} ({pages} pages)")
 
 
 def _redact(url: str) -> str:
@@ -101,16 +119,47 @@ def _warn_settings(app):
 @cli.command()
 @click.option("--host", default="127.0.0.1", show_default=True)
 @click.option("--port", default=8080, show_default=True, type=click.IntRange(0, 65535))
-def serve(host, port):
+@click.option("--workers", default=1, show_default=True, type=click.IntRange(1, 64), envvar="OCCFUSE_WORKERS",
+              help="Processes; more than 1 runs gunicorn, and one worker at a time (the lease holder) runs the "
+                   "epochs.")
+@click.option("--threads", default=4, show_default=True, type=click.IntRange(1, 64),
+              help="Threads per gunicorn worker (with --workers > 1).")
+def serve(host, port, workers, threads):
     """Upgrade the database if needed, then serve the API and run the fusion epochs."""
+    metrics_dir, master_pid = None, os.getpid()
+    if workers > 1 and not os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
+        # Before anything imports prometheus_client: the workers inherit it and share the counters' files.
+        import tempfile
+
+        metrics_dir = tempfile.mkdtemp(prefix="occfuse-metrics-")
+        os.environ["PROMETHEUS_MULTIPROC_DIR"] = metrics_dir
+    try:
+        app = _app()
+        _ensure_schema(app)
+        if not app.config.get("ADMIN_TOKEN"):
+            click.echo("warning: OCCFUSE_ADMIN_TOKEN is not set; admin routes (nodes, plan, fusion) are refused",
+                       err=True)
+        _warn_settings(app)
+        database = _redact(app.config["DATABASE_URL"])
+        if workers > 1:
+            from .workers import GunicornServer, options
+
+            app.extensions["occfuse.engine"].dispose()  # never carry pooled connections across fork
+            click.echo(f"occfuse starting {workers} workers (database {database})")
+            GunicornServer(options(host, port, workers, threads)).run()
+            return
+        _serve_one(app, host, port, database)
+    finally:
+        # gunicorn workers are forked inside run() and unwind through here too: only the master cleans up.
+        if metrics_dir is not None and os.getpid() == master_pid:
+            import shutil
+
+            shutil.rmtree(metrics_dir, ignore_errors=True)
+
+
+def _serve_one(app, host, port, database) -> None:
     from .server import LiveServer
 
-    app = _app()
-    _ensure_schema(app)
-    if not app.config.get("ADMIN_TOKEN"):
-        click.echo("warning: OCCFUSE_ADMIN_TOKEN is not set; admin routes (nodes, plan, fusion) are refused",
-                   err=True)
-    _warn_settings(app)
     server = LiveServer(app, host, port)
 
     def stop(signum, _frame):
@@ -119,7 +168,7 @@ def serve(host, port):
 
     signal.signal(signal.SIGTERM, stop)
     signal.signal(signal.SIGINT, stop)
-    click.echo(f"occfuse serving on {server.url} (database {_redact(app.config['DATABASE_URL'])})")
+    click.echo(f"occfuse serving on {server.url} (database {database})")
     server.serve_forever()
     server._server.server_close()
 

@@ -5,6 +5,7 @@ from __future__ import annotations
 from typing import Any, Mapping
 
 from pydantic import ValidationError
+from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from .api.schemas import FusionSettingsIn
@@ -55,8 +56,11 @@ def get_settings(session: Session, config: Mapping[str, Any]) -> FusionSettings:
     if problems:
         raise ConfigError(f"OCCFUSE_{problems[0]['path'].upper()}: {problems[0]['message']}")
     row = FusionSettings(id=1, **seed)
-    session.add(row)
-    session.flush()
+    try:
+        with session.begin_nested():  # several workers may seed a new database at once: one insert wins
+            session.add(row)
+    except IntegrityError:
+        row = session.get(FusionSettings, 1, populate_existing=True)
     return row
 
 

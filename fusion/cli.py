@@ -1,4 +1,5 @@
-"""The ``occfuse`` command: thin wrappers over plain functions (registry, plan, decisions, server, demo)."""
+"""The ``occfuse`` command: thin wrappers over plain functions (registry, plan, decisions, server, demo,
+evaluate, replay)."""
 
 from __future__ import annotations
 
@@ -55,8 +56,14 @@ def cli(config_file):
     """occfuse: fuse many sensor nodes' channel energy into free / occupied / unknown, with a probability."""
     if config_file:
         os.environ["OCCFUSE_CONFIG"] = config_file
-    logging.basicConfig(level=logging.WARNING, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
-    logging.getLogger("fusion").setLevel(logging.INFO)
+    from .config import load_settings
+    from .logs import setup_logging
+
+    try:
+        settings = load_settings()
+    except OccfuseError:  # the command itself reports the bad setting
+        settings = {"LOG_FORMAT": "text", "LOG_LEVEL": "INFO"}
+    setup_logging(settings["LOG_FORMAT"], settings["LOG_LEVEL"])
 
 
 # --- database ---------------------------------------------------------------------------------------------
@@ -78,10 +85,33 @@ def db_upgrade(revision):
     click.echo(f"database {_redact(url)} is at {revision}")
 
 
+@db.command("backup")
+@click.argument("target", type=click.Path(dir_okay=False))
+def db_backup(target):
+    """Copy the SQLite database to TARGET with SQLite's online backup API (safe while serving)."""
+    from .config import load_settings
+    from .db import backup_sqlite
+
+    url = load_settings()["DATABASE_URL"]
+    pages = backup_sqlite(url, target)
+    click.echo(f"database {_redact(url)} copied to {target} ({pages} pages)")
+
+
 def _redact(url: str) -> str:
     from sqlalchemy.engine import make_url
 
     return make_url(url).render_as_string(hide_password=True)
+
+
+def _warn_settings(app):
+    """Print the settings warnings (e.g. a design SNR below the SNR wall) to standard error."""
+    from .settings import get_settings, settings_dict, settings_warnings
+
+    with _sessions(app)() as session:
+        values = settings_dict(get_settings(session, app.config))
+        session.commit()
+    for text in settings_warnings(values, app.config):
+        click.echo(f"warning: {text}", err=True)
 
 
 # --- serving ----------------------------------------------------------------------------------------------
@@ -89,15 +119,47 @@ def _redact(url: str) -> str:
 @cli.command()
 @click.option("--host", default="127.0.0.1", show_default=True)
 @click.option("--port", default=8080, show_default=True, type=click.IntRange(0, 65535))
-def serve(host, port):
+@click.option("--workers", default=1, show_default=True, type=click.IntRange(1, 64), envvar="OCCFUSE_WORKERS",
+              help="Processes; more than 1 runs gunicorn, and one worker at a time (the lease holder) runs the "
+                   "epochs.")
+@click.option("--threads", default=4, show_default=True, type=click.IntRange(1, 64),
+              help="Threads per gunicorn worker (with --workers > 1).")
+def serve(host, port, workers, threads):
     """Upgrade the database if needed, then serve the API and run the fusion epochs."""
+    metrics_dir, master_pid = None, os.getpid()
+    if workers > 1 and not os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
+        # Before anything imports prometheus_client: the workers inherit it and share the counters' files.
+        import tempfile
+
+        metrics_dir = tempfile.mkdtemp(prefix="occfuse-metrics-")
+        os.environ["PROMETHEUS_MULTIPROC_DIR"] = metrics_dir
+    try:
+        app = _app()
+        _ensure_schema(app)
+        if not app.config.get("ADMIN_TOKEN"):
+            click.echo("warning: OCCFUSE_ADMIN_TOKEN is not set; admin routes (nodes, plan, fusion) are refused",
+                       err=True)
+        _warn_settings(app)
+        database = _redact(app.config["DATABASE_URL"])
+        if workers > 1:
+            from .workers import GunicornServer, options
+
+            app.extensions["occfuse.engine"].dispose()  # never carry pooled connections across fork
+            click.echo(f"occfuse starting {workers} workers (database {database})")
+            GunicornServer(options(host, port, workers, threads)).run()
+            return
+        _serve_one(app, host, port, database)
+    finally:
+        # gunicorn workers are forked inside run() and unwind through here too: only the master cleans up.
+        if metrics_dir is not None and os.getpid() == master_pid:
+            import shutil
+
+            shutil.rmtree(metrics_dir, ignore_errors=True)
+
+
+def _serve_one(app, host, port, database) -> None:
     from .server import LiveServer
 
-    app = _app()
-    _ensure_schema(app)
-    if not app.config.get("ADMIN_TOKEN"):
-        click.echo("warning: OCCFUSE_ADMIN_TOKEN is not set; admin routes (nodes, plan, fusion) are refused",
-                   err=True)
     server = LiveServer(app, host, port)
 
     def stop(signum, _frame):
@@ -106,7 +168,7 @@ def serve(host, port):
 
     signal.signal(signal.SIGTERM, stop)
     signal.signal(signal.SIGINT, stop)
-    click.echo(f"occfuse serving on {server.url} (database {_redact(app.config['DATABASE_URL'])})")
+    click.echo(f"occfuse serving on {server.url} (database {database})")
     server.serve_forever()
     server._server.server_close()
 
@@ -194,6 +256,7 @@ def free(min_confidence, as_json):
 
     app = _app()
     _ensure_schema(app)
+    _warn_settings(app)
     with _sessions(app)() as session:
         out = free_channels(session, min_confidence)
     if as_json:
@@ -224,6 +287,129 @@ def demo(duration, seed, scenario, interval):
 
     code = run_demo(duration_s=duration, seed=seed, scenario_path=scenario, interval_s=interval)
     sys.exit(code)
+
+
+# --- evaluating rules -------------------------------------------------------------------------------------
+
+@cli.command()
+@click.argument("scenario", required=False)
+@click.option("--channel", help="Scenario channel to evaluate (default: the first one a transmitter uses).")
+@click.option("--nodes", type=click.IntRange(1, 1000), help="Homogeneous shorthand: number of identical nodes.")
+@click.option("--snr-db", type=float, help="Homogeneous: mean per-sample SNR in the channel, dB.")
+@click.option("--samples", type=click.IntRange(1), help="Homogeneous: complex samples per measurement.")
+@click.option("--fading", type=click.Choice(["none", "rayleigh", "nakagami"]), default="none", show_default=True,
+              help="Homogeneous: block fading, independent per node and measurement.")
+@click.option("--nakagami-m", type=click.FloatRange(0.5), default=2.0, show_default=True)
+@click.option("--signal", type=click.Choice(["deterministic", "gaussian"]), default="deterministic",
+              show_default=True, help="Homogeneous: signal law (Digham's closed forms are for deterministic).")
+@click.option("--rules", "rule_list", default=",".join(("or", "and", "k_of_n", "majority", "chair_varshney",
+                                                          "egc", "mrc", "llr", "weighted_llr")),
+              show_default=True, help="Comma-separated rules; k_of_n:K sets k (bare k_of_n uses --k).")
+@click.option("--k", "default_k", type=click.IntRange(1), default=2, show_default=True)
+@click.option("--trials", type=click.IntRange(1, 100_000_000), default=100_000, show_default=True)
+@click.option("--target-pf", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=0.1,
+              show_default=True)
+@click.option("--seed", type=int, default=0, show_default=True)
+@click.option("--falsify-mode", type=click.Choice(["free", "occupied"]), default="free", show_default=True,
+              help="What the added falsifiers say in the sensitivity sweep.")
+@click.option("--out", "out_dir", type=click.Path(file_okay=False), help="Write JSON, CSV and PNG plots here.")
+@click.option("--json", "as_json", is_flag=True, help="Print the JSON report to standard output, nothing else.")
+def evaluate(scenario, channel, nodes, snr_db, samples, fading, nakagami_m, signal, rule_list, default_k, trials,
+             target_pf, seed, falsify_mode, out_dir, as_json):
+    """ROC, Pd at the target Pf, calibration and falsifier sensitivity of fusion rules (Monte Carlo + analytic).
+
+    Give a sim_nodes SCENARIO file (or a shipped name: demo, ridge10), or the homogeneous shorthand
+    --nodes N --snr-db DB --samples N [--fading rayleigh].
+    """
+    from rich.console import Console
+    from rich.progress import Progress
+
+    from sim_nodes import evaluate as ev
+    from sim_nodes import evaluate_output as out
+    from sim_nodes.scenario import load_scenario
+
+    shorthand = [nodes, snr_db, samples]
+    try:
+        if scenario and any(v is not None for v in shorthand):
+            raise click.UsageError("give a SCENARIO or --nodes/--snr-db/--samples, not both")
+        if scenario:
+            setup = ev.scenario_setup(load_scenario(scenario), channel=channel, seed=seed)
+        elif all(v is not None for v in shorthand):
+            setup = ev.homogeneous_setup(nodes, snr_db, samples, fading, nakagami_m=nakagami_m, signal=signal)
+        else:
+            raise click.UsageError("give a SCENARIO, or all of --nodes, --snr-db and --samples")
+        specs = ev.parse_rules(rule_list, setup.n_nodes, default_k)
+    except (ValueError, OSError) as exc:
+        raise click.UsageError(str(exc)) from None
+    err = Console(stderr=True)
+    with Progress(console=err, transient=True) as bar:
+        task = bar.add_task("evaluating", total=trials)
+        report = ev.evaluate(setup, specs, trials=trials, target_pf=target_pf, seed=seed,
+                             falsify_mode=falsify_mode, progress=lambda done, _total: bar.update(task, completed=done))
+    if report["trials"] == 0:
+        click.echo("interrupted before the first chunk of trials: nothing to report", err=True)
+        sys.exit(130)
+    if out_dir:
+        written = out.write_report(report, out_dir)
+        click.echo(f"wrote {', '.join(written)} to {out_dir}", err=True)
+    if as_json:
+        click.echo(json.dumps(report, indent=2))
+    else:
+        for line in out.summary_lines(report):
+            click.echo(line)
+    if not report["complete"]:
+        click.echo(f"interrupted: results cover {report['trials']} of {report['trials_requested']} trials", err=True)
+        sys.exit(130)
+
+
+@cli.command()
+@click.option("--rules", "rule_list", required=True, help="Comma-separated rules to replay; k_of_n:K sets k.")
+@click.option("--k", "default_k", type=click.IntRange(1), default=2, show_default=True, help="k for a bare k_of_n.")
+@click.option("--since", help="First epoch time to replay (RFC 3339); default: the oldest stored.")
+@click.option("--until", help="Last epoch time to replay (RFC 3339); default: the newest stored.")
+@click.option("--truth", "truth_path", type=click.Path(exists=True, dir_okay=False),
+              help="A sim_nodes ground-truth log (JSONL) to score every rule and the service against.")
+@click.option("--grace", "grace_s", type=click.FloatRange(0), default=0.0, show_default=True,
+              help="Seconds before a decision within which a matching true state still counts.")
+@click.option("--json", "as_json", is_flag=True, help="Print the result as JSON, nothing else.")
+def replay(rule_list, default_k, since, until, truth_path, grace_s, as_json):
+    """Re-run stored reports through other rules and compare with what the service decided (writes nothing)."""
+    from datetime import datetime, timezone
+
+    from .replay import parse_rule_list, read_truth_log, summary_lines
+    from .replay import replay as run_replay
+
+    def when(text, name):
+        if text is None:
+            return None
+        try:
+            t = datetime.fromisoformat(text.replace("Z", "+00:00"))
+        except ValueError:
+            raise click.BadParameter(f"must be an RFC 3339 time such as 2026-12-01T21:00:00Z, was {text!r}",
+                                     param_hint=name) from None
+        return t if t.tzinfo else t.replace(tzinfo=timezone.utc)
+
+    try:
+        specs = parse_rule_list(rule_list, default_k)
+    except ValueError as exc:
+        raise click.BadParameter(str(exc), param_hint="--rules") from None
+    t0, t1 = when(since, "--since"), when(until, "--until")
+    truth = None
+    if truth_path:
+        try:
+            truth = read_truth_log(truth_path)
+        except ValueError as exc:
+            raise click.BadParameter(str(exc), param_hint="--truth") from None
+    app = _app()
+    _ensure_schema(app)
+    with _sessions(app)() as session:
+        result = run_replay(session, app.config, specs, since=t0, until=t1, truth=truth, grace_s=grace_s)
+        session.rollback()  # replay only reads; make sure nothing could be flushed
+    if as_json:
+        click.echo(json.dumps(result.as_dict(), indent=2))
+    else:
+        for line in summary_lines(result):
+            click.echo(line)
 
 
 def _optional_commands() -> None:

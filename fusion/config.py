@@ -34,7 +34,17 @@ DEFAULTS: dict[str, Any] = {
     "MAX_SKEW_S": 30.0,  # how far in the future measured_at may be (node clocks drift)
     # scheduler
     "SCHEDULER_ENABLED": False,  # create_app never starts threads; `occfuse serve` turns this on
+    "LEASE_TTL_S": 15.0,  # a dead leader's epochs move to another worker within TTL + TTL/3 (README)
     "LOG_LEVEL": "INFO",
+    "LOG_FORMAT": "text",  # "json": one JSON object per line
+    # retention of raw reports (0 keeps them forever); pruned by the leader in bounded batches
+    "RETENTION_S": 0.0,
+    "RETENTION_BATCH": 1000,  # rows per delete transaction
+    "RETENTION_EVERY_S": 60.0,
+    # readiness: /healthz is not ready when the newest epoch is older than this (0: 3 intervals + lease TTL)
+    "READY_MAX_EPOCH_AGE_S": 0.0,
+    # detection: how well the nodes know their noise floor, in dB (0 = not stated; see README, "SNR wall")
+    "NOISE_UNCERTAINTY_DB": 0.0,
     # initial fusion settings of a new database (see module docstring)
     "INTERVAL_S": 10.0,
     "RULE": "weighted_llr",  # see README, "Choosing a rule"
@@ -51,6 +61,7 @@ DEFAULTS: dict[str, Any] = {
 FUSION_KEYS = ("RULE", "K", "TARGET_PF", "MIN_NODES", "WINDOW_S", "MAX_AGE_S", "INTERVAL_S", "CONFIDENCE",
                "PRIOR", "SNR_DB")
 
+_CHOICES = {"LOG_FORMAT": ("text", "json")}
 _TRUE, _FALSE = {"1", "true", "yes", "on"}, {"0", "false", "no", "off"}
 
 
@@ -75,10 +86,14 @@ def _coerce(key: str, value: Any, where: str) -> Any:
             if isinstance(value, bool):
                 raise ValueError
             return float(value)
-        return str(value)
+        text = str(value)
+        if key in _CHOICES and text not in _CHOICES[key]:
+            raise ValueError
+        return text
     except (TypeError, ValueError):
         kind = type(default).__name__ if default is not None else "str"
-        raise ConfigError(f"{where}: {key} must be a {kind}, was {value!r}") from None
+        kind = f"a {kind}" if key not in _CHOICES else "one of " + ", ".join(_CHOICES[key])
+        raise ConfigError(f"{where}: {key} must be {kind}, was {value!r}") from None
 
 
 def load_settings(config_file: str | os.PathLike | None = None,
@@ -118,4 +133,7 @@ def load_settings(config_file: str | os.PathLike | None = None,
     if overrides:
         for key, value in overrides.items():
             settings[key] = _coerce(key, value, "configuration") if key in DEFAULTS else value
+    x = settings["NOISE_UNCERTAINTY_DB"]
+    if not (x >= 0 and x < 20):  # also refuses NaN
+        raise ConfigError(f"NOISE_UNCERTAINTY_DB must be in [0, 20) dB, was {x!r}")
     return settings

@@ -20,7 +20,7 @@ from sqlalchemy.orm import Session, sessionmaker
 from .errors import ConfigError
 
 __all__ = ["make_engine", "init_app", "get_session", "read_session", "alembic_config", "upgrade", "current_revision",
-           "head_revision", "MIGRATIONS"]
+           "head_revision", "backup_sqlite", "MIGRATIONS"]
 
 MIGRATIONS = Path(__file__).resolve().parent.parent / "migrations"
 
@@ -141,3 +141,32 @@ def head_revision(url: str) -> str | None:
     from alembic.script import ScriptDirectory
 
     return ScriptDirectory.from_config(alembic_config(url)).get_current_head()
+
+
+def backup_sqlite(url: str, target: str | Path) -> int:
+    """Copy the SQLite database at `url` to the file `target` with the online backup API; return its pages.
+
+    The copy is consistent (WAL content included) even while other processes write; pages are copied in steps
+    so writers are held up only briefly. Refuses a non-SQLite URL and an existing target.
+    """
+    import sqlite3
+
+    from sqlalchemy.engine import make_url
+
+    parsed = make_url(url)
+    if parsed.get_backend_name() != "sqlite" or not parsed.database or parsed.database == ":memory:":
+        raise ConfigError(f"backup copies a SQLite database file; DATABASE_URL is {parsed.get_backend_name()} "
+                          f"(use pg_dump for PostgreSQL)")
+    source_path, target = Path(parsed.database), Path(target)
+    if not source_path.exists():
+        raise ConfigError(f"no database at {source_path}")
+    if target.exists():
+        raise ConfigError(f"{target} already exists; choose a new file name")
+    source = sqlite3.connect(f"file:{source_path}?mode=ro", uri=True, timeout=15)
+    dest = sqlite3.connect(target)
+    try:
+        source.backup(dest, pages=1024)  # 1024 pages per step: other connections may write between steps
+        return dest.execute("PRAGMA page_count").fetchone()[0]
+    finally:
+        dest.close()
+        source.close()

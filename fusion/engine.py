@@ -23,7 +23,7 @@ from .models import Decision, Epoch, FusionState, Node, NodeReliability, Report,
 from .plan import current_plan
 from .settings import get_settings, settings_dict
 
-__all__ = ["EpochInputs", "gather", "publish_states", "run_epoch"]
+__all__ = ["EpochInputs", "EpochFusion", "gather", "fuse_epoch", "learn_epoch", "publish_states", "run_epoch"]
 
 
 @dataclass
@@ -142,6 +142,73 @@ def _reliability(session: Session, nodes: list[Node], revision: int, n_channels:
     return model, rows
 
 
+@dataclass
+class EpochFusion:
+    """What :func:`fuse_epoch` made of one epoch's inputs (nothing here touches the database)."""
+
+    t: np.ndarray  # (n_nodes, n_channels) normalised energies, NaN = no fresh report
+    reported_noise: np.ndarray  # (n_nodes,) each node's own noise figure (median over channels), NaN = none
+    pins: np.ndarray  # (n_nodes,) of "trusted" / "excluded" / None
+    prior: np.ndarray  # (n_channels,) P(occupied) the rule started from
+    result: rules.FusionResult
+    states: np.ndarray  # (n_channels,) of "free" / "occupied" / "unknown"
+
+
+def fuse_epoch(x: EpochInputs, model: ReliabilityModel | None, pins, tracker: MarkovTracker, *, rule: str,
+               k: int | None, target_pf: float, snr_db: float, prior: float, confidence: float,
+               min_nodes: int) -> EpochFusion:
+    """Normalise, fuse, publish and filter one epoch: the pure middle of :func:`run_epoch`.
+
+    `model` is the reliability learner sized to ``x.nodes`` (None when there are no nodes); `tracker` is
+    advanced by this epoch's posteriors.  `replay` runs this with other rules over stored reports.
+    """
+    n_nodes, n_ch = len(x.nodes), x.power_dbm.shape[1]
+    pins = np.array(list(pins), dtype=object) if n_nodes else np.array([], dtype=object)
+    if n_nodes:
+        # Noise: the report's own figure, else the node's learned floor (also replacing a drifting figure).
+        reported = _row_nanmedian(x.noise_dbm)  # the node's own figure, one per node
+        floor = model.noise_for(reported)
+        replaced = ~(floor == reported)
+        noise = np.where(np.isnan(x.noise_dbm) | replaced[:, None], floor[:, None], x.noise_dbm)
+        t = energy.normalise(x.power_dbm, noise, x.n_samples)
+        node_trust = np.where(pins == "trusted", 1.0, np.where(pins == "excluded", 0.0, model.trust_))
+        t[~np.isfinite(t)] = np.nan
+    else:
+        reported = np.zeros(0)
+        t = np.full((0, n_ch), np.nan)
+
+    # The configured prior until the tracker has seen an epoch, then its one-step prediction.
+    prior_v = np.full(n_ch, prior) if tracker.n_updates_ == 0 else np.clip(tracker.prior_, 1e-6, 1 - 1e-6)
+    design_snr = 10 ** (snr_db / 10)
+    rows_needed = max(n_nodes, k or 1, 1)  # rules need k <= rows; absent nodes are rows of NaN
+    t_in = np.vstack([t, np.full((rows_needed - n_nodes, n_ch), np.nan)])
+    if n_nodes:
+        # Nodes pinned excluded or judged suspect (trust 0) count for no rule. The learner still sees their
+        # reports (learn_epoch), so a node that mends its ways can earn its trust back; the reports stay stored.
+        t_in[:n_nodes][node_trust <= 0.0, :] = np.nan
+    n_in = np.vstack([x.n_samples, np.ones((rows_needed - n_nodes, n_ch))])
+    snr = np.full(t_in.shape, design_snr)
+    trust = np.ones(rows_needed)
+    if n_nodes:
+        snr[:n_nodes] = model.snr_filled(design_snr)
+        trust[:n_nodes] = np.clip(node_trust, 0.0, 1.0)
+    result = rules.fuse(t_in, n_in, rule=rule, target_pf=target_pf, k=k if rule == "k_of_n" else None,
+                        snr=snr, trust=trust, prior=prior_v)
+    states = publish_states(result.p_occupied, result.n_reporting, confidence=confidence, min_nodes=min_nodes)
+    tracker.update(result.p_occupied, prior_used=prior_v)
+    return EpochFusion(t, reported, pins, prior_v, result, states)
+
+
+def learn_epoch(model: ReliabilityModel, x: EpochInputs, fused: EpochFusion, *, now_s: float,
+                max_age_s: float) -> ReliabilityModel:
+    """Update the reliability learner from one fused epoch (no database)."""
+    # Labels come from the posterior with each node's own contribution removed (leave-one-out inside the
+    # model); also requiring the published state was measured to bias every node's Pf low.
+    return model.update(t=fused.t, n_samples=x.n_samples, report_time_s=x.report_time_s, now_s=now_s,
+                        max_age_s=max_age_s, p_occupied=fused.result.p_occupied, power_dbm=x.power_dbm,
+                        noise_dbm_reported=fused.reported_noise, pinned=list(fused.pins))
+
+
 def run_epoch(session: Session, now: datetime, config: Mapping[str, Any]) -> Epoch | None:
     """Fuse the fresh reports as of `now` and write one decision per plan channel; return the epoch."""
     started = time.perf_counter()
@@ -154,55 +221,21 @@ def run_epoch(session: Session, now: datetime, config: Mapping[str, Any]) -> Epo
     x = gather(session, plan.revision, len(ids), now, max_age_s=fs.max_age_s, window_s=fs.window_s,
                max_skew_s=config["MAX_SKEW_S"])
     n_nodes = len(x.nodes)
-
-    # Noise: the report's own figure, else the node's learned floor (also replacing a drifting figure).
     model, rel_rows = _reliability(session, x.nodes, plan.revision, len(ids)) if n_nodes else (None, {})
-    if n_nodes:
-        reported = _row_nanmedian(x.noise_dbm)  # the node's own figure, one per node
-        floor = model.noise_for(reported)
-        replaced = ~(floor == reported)
-        noise = np.where(np.isnan(x.noise_dbm) | replaced[:, None], floor[:, None], x.noise_dbm)
-        t = energy.normalise(x.power_dbm, noise, x.n_samples)
-        pins = np.array([rel_rows[n.id].pinned for n in x.nodes], dtype=object)
-        node_trust = np.where(pins == "trusted", 1.0, np.where(pins == "excluded", 0.0, model.trust_))
-        t[~np.isfinite(t)] = np.nan
-    else:
-        t = np.full((0, len(ids)), np.nan)
+    pins = [rel_rows[n.id].pinned for n in x.nodes]
 
     tracker = MarkovTracker(len(ids))
     saved = _load_state(session, "tracker")
     if saved and saved.get("revision") == plan.revision:
         tracker.set_state(saved["state"])
-    # The configured prior until the tracker has seen an epoch, then its one-step prediction.
-    prior = np.full(len(ids), fs.prior) if tracker.n_updates_ == 0 else np.clip(tracker.prior_, 1e-6, 1 - 1e-6)
-
-    design_snr = 10 ** (fs.snr_db / 10)
-    k = fs.k
-    rows_needed = max(n_nodes, k or 1, 1)  # rules need k <= rows; absent nodes are rows of NaN
-    t_in = np.vstack([t, np.full((rows_needed - n_nodes, len(ids)), np.nan)])
-    if n_nodes:
-        # Nodes pinned excluded or judged suspect (trust 0) count for no rule. The learner still sees their
-        # reports (below), so a node that mends its ways can earn its trust back; the reports stay stored.
-        t_in[:n_nodes][node_trust <= 0.0, :] = np.nan
-    n_in = np.vstack([x.n_samples, np.ones((rows_needed - n_nodes, len(ids)))])
-    snr = np.full(t_in.shape, design_snr)
-    trust = np.ones(rows_needed)
-    if n_nodes:
-        snr[:n_nodes] = model.snr_filled(design_snr)
-        trust[:n_nodes] = np.clip(node_trust, 0.0, 1.0)
-    result = rules.fuse(t_in, n_in, rule=fs.rule, target_pf=fs.target_pf, k=k if fs.rule == "k_of_n" else None,
-                        snr=snr, trust=trust, prior=prior)
+    fused = fuse_epoch(x, model, pins, tracker, rule=fs.rule, k=fs.k, target_pf=fs.target_pf, snr_db=fs.snr_db,
+                       prior=fs.prior, confidence=fs.confidence, min_nodes=fs.min_nodes)
+    result, states = fused.result, fused.states
     p = result.p_occupied
-    states = publish_states(p, result.n_reporting, confidence=fs.confidence, min_nodes=fs.min_nodes)
-    tracker.update(p, prior_used=prior)
     _save_state(session, "tracker", {"revision": plan.revision, "state": _json_arrays(tracker.get_state())})
 
     if n_nodes:
-        # Labels come from the posterior with each node's own contribution removed (leave-one-out inside the
-        # model); also requiring the published state was measured to bias every node's Pf low.
-        model.update(t=t, n_samples=x.n_samples, report_time_s=x.report_time_s, now_s=now.timestamp(),
-                     max_age_s=fs.max_age_s, p_occupied=p, power_dbm=x.power_dbm,
-                     noise_dbm_reported=reported, pinned=list(pins))
+        learn_epoch(model, x, fused, now_s=now.timestamp(), max_age_s=fs.max_age_s)
         state = model.get_state()
         for i, node in enumerate(x.nodes):
             row = rel_rows[node.id]

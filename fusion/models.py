@@ -15,7 +15,7 @@ from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
 from sqlalchemy.types import TypeDecorator
 
 __all__ = ["Base", "UTCDateTime", "Node", "PlanRevision", "Channel", "Report", "Epoch", "Decision",
-           "NodeReliability", "FusionSettings", "FusionState", "utcnow", "pack", "unpack"]
+           "NodeReliability", "FusionSettings", "FusionState", "JobLease", "utcnow", "pack", "unpack"]
 
 NAMING = {
     "ix": "ix_%(column_0_label)s",
@@ -218,3 +218,16 @@ class FusionState(Base):
 
     def __repr__(self) -> str:
         return f"FusionState(key={self.key!r})"
+
+
+class JobLease(Base):
+    """Who runs a periodic job (the fusion epoch) among several workers, until when (see fusion/lease.py)."""
+
+    __tablename__ = "job_lease"
+
+    name: Mapped[str] = mapped_column(String(64), primary_key=True)
+    holder: Mapped[str] = mapped_column(String(128))  # "host:pid:uuid" of the leader
+    expires_at: Mapped[float] = mapped_column(Float)  # POSIX seconds; plain numbers compare the same everywhere
+
+    def __repr__(self) -> str:
+        return f"JobLease(name={self.name!r}, holder={self.holder!r}, expires_at={self.expires_at!r})"

@@ -5,14 +5,16 @@ from __future__ import annotations
 from typing import Any, Mapping
 
 from pydantic import ValidationError
+from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from .api.schemas import FusionSettingsIn
+from .detection.energy import check_snr_wall
 from .errors import ConfigError, Unprocessable
 from .models import FusionSettings, utcnow
 from .plan import error_path
 
-__all__ = ["get_settings", "update_settings", "settings_dict", "check_settings"]
+__all__ = ["get_settings", "update_settings", "settings_dict", "check_settings", "settings_warnings"]
 
 _FIELDS = ("rule", "k", "target_pf", "min_nodes", "window_s", "max_age_s", "interval_s", "confidence", "prior",
            "snr_db")
@@ -33,6 +35,12 @@ def check_settings(values: Mapping[str, Any]) -> list[dict]:
     return errors
 
 
+def settings_warnings(values: Mapping[str, Any], config: Mapping[str, Any]) -> list[str]:
+    """Advice about settings that are valid but cannot do what they promise (shown by the API and CLI)."""
+    wall = check_snr_wall(values["snr_db"], config.get("NOISE_UNCERTAINTY_DB", 0.0))
+    return [f"snr_db: {wall.message}"] if wall.below_wall else []
+
+
 def get_settings(session: Session, config: Mapping[str, Any]) -> FusionSettings:
     """The stored settings; on a new database, create them from the configuration's fusion keys."""
     row = session.get(FusionSettings, 1)
@@ -48,8 +56,11 @@ def get_settings(session: Session, config: Mapping[str, Any]) -> FusionSettings:
     if problems:
         raise ConfigError(f"OCCFUSE_{problems[0]['path'].upper()}: {problems[0]['message']}")
     row = FusionSettings(id=1, **seed)
-    session.add(row)
-    session.flush()
+    try:
+        with session.begin_nested():  # several workers may seed a new database at once: one insert wins
+            session.add(row)
+    except IntegrityError:
+        row = session.get(FusionSettings, 1, populate_existing=True)
     return row
 
 

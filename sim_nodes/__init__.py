@@ -3,7 +3,8 @@
 Modules: :mod:`~sim_nodes.scenario` (TOML files), :mod:`~sim_nodes.propagation`,
 :mod:`~sim_nodes.activity` (transmitters on/off), :mod:`~sim_nodes.behaviour` (node faults),
 :mod:`~sim_nodes.network` (measurements, fast or IQ-level), :mod:`~sim_nodes.client` (drives
-a live service), :mod:`~sim_nodes.truth` (ground-truth log and scoring).
+a live service), :mod:`~sim_nodes.truth` (ground-truth log and scoring), :mod:`~sim_nodes.evaluate`
+(Monte Carlo and analytic evaluation of the fusion rules; `occfuse evaluate`).
 """
 
 __all__ = ["DEMO_SCENARIO", "load_scenario", "run_scenario", "load_truth"]

@@ -81,3 +81,17 @@ def test_config_file_option(runner, tmp_path):
     f.write_text("interval_s = 'often'\n")
     r = runner.invoke(cli, ["--config", str(f), "free"])
     assert r.exit_code == 2 and "interval_s" in r.output.lower()
+
+
+def test_free_warns_when_the_design_snr_is_below_the_snr_wall(runner, monkeypatch):
+    # Tandra & Sahai (2008): 2 dB of noise uncertainty puts the wall at 10 log10(rho - 1/rho) = -0.2 dB, so
+    # the default design SNR (-10 dB) cannot be detected at any sensing time; the command says so on stderr.
+    monkeypatch.setenv("OCCFUSE_NOISE_UNCERTAINTY_DB", "2")
+    r = CliRunner().invoke(cli, ["free"])
+    assert r.exit_code == 0 and "warning: snr_db: Target SNR -10.0 dB is below the SNR wall" in r.stderr
+
+
+def test_noise_uncertainty_must_be_a_sane_number_of_db(runner, monkeypatch):
+    monkeypatch.setenv("OCCFUSE_NOISE_UNCERTAINTY_DB", "-1")
+    r = CliRunner().invoke(cli, ["free"])
+    assert r.exit_code != 0 and "NOISE_UNCERTAINTY_DB must be in [0, 20) dB, was -1.0" in r.output

@@ -37,9 +37,13 @@ def _report(seq: int, *, at=None, power=-100.0) -> dict:
 
 def _start_serve(db_path, *extra):
     env = {**os.environ, "OCCFUSE_DATABASE_URL": f"sqlite:///{db_path}", "OCCFUSE_ADMIN_TOKEN": ADMIN,
-           "OCCFUSE_INTERVAL_S": "0.5", "OCCFUSE_CONFIG": "", "OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1"}
+           "OCCFUSE_INTERVAL_S": "0.5", "OCCFUSE_CONFIG": "", "OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1",
+           "OCCFUSE_LEASE_TTL_S": "2"}  # a killed leader's SQLite lease runs out soon after the restart
+    env.pop("PROMETHEUS_MULTIPROC_DIR", None)  # serve --workers makes its own
+    # Its own session: kill -9 then reaches every process of the server (gunicorn master and workers).
     proc = subprocess.Popen([sys.executable, "-m", "fusion.cli", "serve", "--host", "127.0.0.1", "--port", "0",
-                             *extra], env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+                             *extra], env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
+                            start_new_session=True)
     deadline = time.monotonic() + 60
     lines = []
     while time.monotonic() < deadline:
@@ -78,9 +82,10 @@ def _epochs(db_path) -> int:
 
 
 @pytest.mark.http
-def test_kill_9_during_sustained_ingest_loses_no_acknowledged_report(tmp_path):
+@pytest.mark.parametrize("workers", [[], ["--workers", "2"]], ids=["one process", "--workers 2"])
+def test_kill_9_during_sustained_ingest_loses_no_acknowledged_report(tmp_path, workers):
     db = tmp_path / "kill.db"
-    proc, url, _ = _start_serve(db)
+    proc, url, _ = _start_serve(db, *workers)
     acked: dict[str, set[int]] = {}
     unsure: dict[str, set[int]] = {}  # sent, no answer: stored or not, either is allowed
     try:
@@ -112,7 +117,7 @@ def test_kill_9_during_sustained_ingest_loses_no_acknowledged_report(tmp_path):
         while sum(len(a) for a in acked.values()) < 200 and time.monotonic() < deadline:
             time.sleep(0.05)
         assert _epochs(db) >= 1  # the scheduler was running epochs while ingest ran
-        proc.send_signal(signal.SIGKILL)
+        os.killpg(proc.pid, signal.SIGKILL)  # the whole server at once, workers included
         killed.set()
         _stop(proc)  # reaps it (already dead) and closes its pipe
         for t in threads:
@@ -131,7 +136,7 @@ def test_kill_9_during_sustained_ingest_loses_no_acknowledged_report(tmp_path):
 
         # Restart on the same file: epochs resume, and the nodes' retries of the unanswered reports are safe.
         before = _epochs(db)
-        proc, url, _ = _start_serve(db)
+        proc, url, _ = _start_serve(db, *workers)
         for name, token in tokens.items():
             for seq in sorted(unsure[name]):
                 r = httpx.post(f"{url}/api/v1/reports", json=_report(seq), timeout=10,

@@ -102,9 +102,17 @@ def build_spec(reads_need_token: bool = False) -> dict:
                     "requestBody": body(s.FusionSettingsIn), "responses": {**ok(s.FusionSettingsOut),
                                                                            **_WRITE_ERRORS}}},
         "/healthz": {"get": {"summary": "Liveness and readiness", "security": [{}],
-                             "responses": {**ok(s.Health), "503": {"description": "Database unreachable",
+                             "responses": {**ok(s.Health), "503": {"description": "Not ready: database "
+                                                                                  "unreachable or epochs stale",
                                                                    "content": {"application/json": {
                                                                        "schema": ref(s.Health)}}}}}},
+        "/healthz/live": {"get": {"summary": "Liveness only (the process answers)", "security": [{}],
+                                  "responses": {"200": {"description": "Alive", "content": {"application/json": {
+                                      "schema": {"type": "object", "properties": {"live": {"const": True}},
+                                                 "required": ["live"]}}}}}}},
+        "/metrics": {"get": {"summary": "Prometheus metrics (text exposition format 0.0.4)", "security": reader,
+                             "responses": {"200": {"description": "Metrics", "content": {"text/plain": {
+                                 "schema": {"type": "string"}}}}, **_READ_ERRORS}}},
         "/api/v1/openapi.json": {"get": {"summary": "This document", "security": [{}],
                                          "responses": {"200": {"description": "OpenAPI 3.1 document",
                                                                "content": {"application/json": {}}}}}},

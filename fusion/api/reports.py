@@ -7,6 +7,7 @@ from flask import Blueprint, current_app, g
 from ..db import get_session
 from ..errors import Unprocessable
 from ..ingest import NodeRef, ingest_reports
+from ..metrics import REPORTS_ACCEPTED
 from ..models import utcnow
 from ..plan import last_seen_plan
 from .auth import role
@@ -38,6 +39,8 @@ def create():
                              max_measurements=current_app.config["MAX_MEASUREMENTS"], plan=plan)
     session.commit()  # durable before we acknowledge
     created = sum(status == "created" for _, status in results)
+    REPORTS_ACCEPTED.labels("created").inc(created)
+    REPORTS_ACCEPTED.labels("duplicate").inc(len(results) - created)
     status_code = 201 if created else 200
     if not batch:
         seq, status = results[0]

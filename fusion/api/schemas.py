@@ -227,10 +227,16 @@ class FusionSettingsOut(_Out):
 
 
 class Health(_Out):
+    """Liveness (the process answers) and readiness (database reachable, epochs not stale)."""
+
     status: Literal["ok", "degraded"]
+    live: bool
+    ready: bool
     database: bool
     last_epoch_at: datetime | None
     last_epoch_age_s: float | None
+    max_epoch_age_s: float
+    problems: list[str]
 
 
 class Problem(BaseModel):

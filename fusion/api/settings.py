@@ -5,7 +5,7 @@ from __future__ import annotations
 from flask import Blueprint, current_app
 
 from ..db import get_session
-from ..settings import get_settings, settings_dict, update_settings
+from ..settings import get_settings, settings_dict, settings_warnings, update_settings
 from .auth import role
 from .problems import read_body, respond
 from .schemas import FusionSettingsIn, FusionSettingsOut
@@ -16,7 +16,8 @@ bp = Blueprint("fusion_settings", __name__, url_prefix="/api/v1/fusion")
 
 
 def _view(row) -> dict:
-    return {**settings_dict(row), "updated_at": row.updated_at, "warnings": []}
+    values = settings_dict(row)
+    return {**values, "updated_at": row.updated_at, "warnings": settings_warnings(values, current_app.config)}
 
 
 @bp.get("")

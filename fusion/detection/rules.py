@@ -373,6 +373,13 @@ def _cv_null_isf(d, p0, mask, target_pf):
     out = np.zeros(d.shape[1])
     if m == 0:
         return out
+    # Channels with the same weights, null rates and reporters share one null law: enumerate each once
+    # (many channels alike, e.g. before anything is learned, or trials laid out as channels).
+    key = np.vstack([d, p0, mask])
+    uniq, inverse = np.unique(key, axis=1, return_inverse=True)
+    if uniq.shape[1] < d.shape[1]:
+        k = d.shape[0]
+        return _cv_null_isf(uniq[:k], uniq[k:2 * k], uniq[2 * k:].astype(bool), target_pf)[inverse.ravel()]
     bits = np.array(list(itertools.product((0.0, 1.0), repeat=m)))
     order = np.argsort(~mask, axis=0, kind="stable")[:m]  # reporting nodes first
     for start in range(0, d.shape[1], _CV_BLOCK):  # blocks of channels bound the memory

@@ -36,6 +36,8 @@ __all__ = [
 
 # Probabilities are kept this far from 0 and 1 before taking logs (METHODS.md section 3).
 EPS = 1e-6
+# From this many samples on, clipped-LLR cumulants use the Wilson-Hilferty form of the gamma law.
+WH_MIN_SAMPLES = 50
 
 
 class SystemPerformance(NamedTuple):
@@ -429,7 +431,8 @@ def shifted_gamma_isf(q, k1, k2, k3):
 _GL_X, _GL_W = np.polynomial.legendre.leggauss(96)
 
 
-def clipped_llr_cumulants(n_samples, snr, trust=1.0, clip=np.inf, *, hypothesis=0, signal="gaussian"):
+def clipped_llr_cumulants(n_samples, snr, trust=1.0, clip=np.inf, *, hypothesis=0, signal="gaussian",
+                          method="auto"):
     """First three cumulants of one node's term ``clip(trust * l(T), -clip, clip)``.
 
     ``l(T) = T snr/(1 + snr) - N ln(1 + snr)`` is the Gaussian-signal log-likelihood
@@ -445,6 +448,11 @@ def clipped_llr_cumulants(n_samples, snr, trust=1.0, clip=np.inf, *, hypothesis=
         Law of ``T``: H0 ``Gamma(N, 1)``; H1 per ``signal``.
     signal : {"gaussian", "deterministic"}
         Under H1, ``T ~ Gamma(N, 1 + snr)`` or ``2T ~ ncx2(2N, 2 N snr)``.
+    method : {"auto", "exact"}
+        ``"exact"``: quadrature on the exact law.  ``"auto"``: for a gamma law with
+        ``N >= 50`` and a finite clip, the Wilson-Hilferty cube-root normal form of the
+        gamma law [2]_, whose moments over the clip window are closed-form (two orders of
+        magnitude faster; agreement with the exact cumulants is checked in the tests).
 
     Returns
     -------
@@ -462,14 +470,31 @@ def clipped_llr_cumulants(n_samples, snr, trust=1.0, clip=np.inf, *, hypothesis=
     .. [1] J. Ma, G. Zhao, Y. Li, "Soft combination and detection for cooperative spectrum
        sensing in cognitive radio networks," IEEE Trans. Wireless Commun.
        7(11):4502-4507, 2008.
+    .. [2] E. B. Wilson, M. M. Hilferty, "The distribution of chi-square," Proc. Natl.
+       Acad. Sci. USA 17(12):684-688, 1931.
     """
     # Input validation
     if hypothesis not in (0, 1):
         raise ValueError(f"`hypothesis` must be 0 or 1, was {hypothesis!r}")
     if signal not in ("gaussian", "deterministic"):
         raise ValueError(f"`signal` must be one of 'gaussian', 'deterministic', was {signal!r}")
+    if method not in ("auto", "exact"):
+        raise ValueError(f"`method` must be one of 'auto', 'exact', was {method!r}")
     n, g, s, c = np.broadcast_arrays(*(np.asarray(v, dtype=float) for v in (n_samples, snr, trust, clip)))
 
+    if method == "auto" and (hypothesis == 0 or signal == "gaussian"):
+        fast = (n >= WH_MIN_SAMPLES) & np.isfinite(c)
+        scale = 1.0 if hypothesis == 0 else 1.0 + g
+        if np.all(fast):
+            return _blocked_wh(n, g, s, c, np.broadcast_to(scale, n.shape))
+        if np.any(fast):
+            out = [np.empty(n.shape) for _ in range(3)]
+            wh = _blocked_wh(n[fast], g[fast], s[fast], c[fast], np.broadcast_to(scale, n.shape)[fast])
+            ex = clipped_llr_cumulants(n[~fast], g[~fast], s[~fast], c[~fast], hypothesis=hypothesis,
+                                       signal=signal, method="exact")
+            for o, a, b in zip(out, wh, ex):
+                o[fast], o[~fast] = a, b
+            return tuple(out)
     alpha = s * g / (1.0 + g)
     beta = s * n * np.log1p(g)
     if hypothesis == 0:
@@ -502,6 +527,67 @@ def clipped_llr_cumulants(n_samples, snr, trust=1.0, clip=np.inf, *, hypothesis=
     m1, m2, m3 = m
     k2 = np.maximum(m2 - m1**2, 0.0)
     k3 = m3 - 3 * m1 * m2 + 2 * m1**3
+    return m1, k2, k3
+
+
+# Cells per block: ~150 temporaries of 128 KiB stay in the allocator's heap and in cache. Whole (1000 x 256)
+# arrays instead make every call fault in ~80 MB of fresh pages, which costs more than the arithmetic.
+_WH_BLOCK = 16_384
+
+
+def _blocked_wh(n, g, s, c, scale):
+    """:func:`_clipped_gamma_wh` over same-shaped arrays, one block of cells at a time."""
+    shape = n.shape
+    args = [np.ravel(v) for v in (n, g, s, c, scale)]
+    out = [np.empty(args[0].size) for _ in range(3)]
+    for lo in range(0, args[0].size, _WH_BLOCK):
+        part = _clipped_gamma_wh(*(a[lo:lo + _WH_BLOCK] for a in args))
+        for o, p in zip(out, part):
+            o[lo:lo + _WH_BLOCK] = p
+    return tuple(o.reshape(shape) for o in out)
+
+
+def _clipped_gamma_wh(n, g, s, c, scale):
+    """Cumulants of ``clip(s l(T), -c, c)`` for ``T ~ Gamma(n, scale)``, Wilson-Hilferty form.
+
+    ``T = scale n U^3`` with ``U ~ N(m, sd^2)``, ``m = 1 - 1/(9n)``, ``sd = 1/(3 sqrt n)``.  On
+    the clip window the term is ``k U^3 - beta``; its powers need the partial moments
+    ``I_j = E[U^j; window]``, which integration by parts gives in closed form:
+    ``I_j = m I_(j-1) + sd^2 (j-1) I_(j-2) + sd (u_a^(j-1) phi(z_a) - u_b^(j-1) phi(z_b))``.
+    Written with products rather than ``**`` and ``np.where``: this runs once per node and
+    channel every epoch, and those two cost ~10x a multiplication.
+    """
+    alpha = s * g / (1.0 + g)
+    beta = s * n * np.log1p(g)
+    m, sd = 1.0 - 1.0 / (9.0 * n), 1.0 / (3.0 * np.sqrt(n))
+    dead = alpha == 0  # a zero-slope term is the constant clip(-beta); fixed up at the end
+    k = alpha * scale * n
+    per_u3 = 1.0 / (k + dead)  # U^3 = T / (scale n), and T = (y + beta) / alpha on the window
+    u_a = np.cbrt(np.maximum(beta - c, 0.0) * per_u3)
+    u_b = np.cbrt((beta + c) * per_u3)
+    z_a, z_b = (u_a - m) / sd, (u_b - m) / sd
+    f_lo, s_hi = special.ndtr(z_a), special.ndtr(-z_b)
+    # sd phi(z); the exponent is capped so that nothing far out turns subnormal (slow in every later product).
+    w = sd / np.sqrt(2 * np.pi)
+    phi_a = np.exp(-np.minimum(0.5 * z_a * z_a, 600.0)) * w
+    phi_b = np.exp(-np.minimum(0.5 * z_b * z_b, 600.0)) * w
+    sd2 = sd * sd
+    moments = [1.0 - f_lo - s_hi, m * (1.0 - f_lo - s_hi) + (phi_a - phi_b)]  # I_0, I_1
+    pa, pb = u_a, u_b  # u^(j-1) at the window's ends
+    for j in range(2, 10):
+        moments.append(m * moments[j - 1] + sd2 * (j - 1) * moments[j - 2] + (pa * phi_a - pb * phi_b))
+        pa, pb = pa * u_a, pb * u_b
+    i0, i3, i6, i9 = moments[0], moments[3], moments[6], moments[9]
+    kb, k2b = k * beta, k * k
+    odd = s_hi - f_lo
+    m1 = c * odd + k * i3 - beta * i0
+    m2 = (c * c) * (f_lo + s_hi) + k2b * i6 - 2.0 * kb * i3 + beta * beta * i0
+    m3 = (c * c * c) * odd + k2b * k * i9 - 3.0 * k2b * beta * i6 + 3.0 * kb * beta * i3 - beta * beta * beta * i0
+    if np.any(dead):
+        const = np.clip(-beta, -c, c)
+        m1, m2, m3 = (np.where(dead, const**r, v) for r, v in zip((1, 2, 3), (m1, m2, m3)))
+    k2 = np.maximum(m2 - m1 * m1, 0.0)
+    k3 = m3 - 3.0 * m1 * m2 + 2.0 * m1 * m1 * m1
     return m1, k2, k3
 
 

@@ -97,3 +97,16 @@ def test_put_interval_retimes_the_scheduler_without_restart(app, client, admin):
 def test_health(client):
     body = client.get("/healthz").json
     assert body["status"] == "ok" and body["database"] is True
+
+
+def test_fusion_settings_warn_below_the_snr_wall(make_app, admin):
+    # Tandra & Sahai (IEEE JSTSP 2008): with noise uncertainty x dB the energy detector's SNR wall is
+    # 10 log10(rho - 1/rho), rho = 10^(x/10): -3.33 dB at x = 1 dB. A design SNR of -10 dB is below it.
+    client = make_app(NOISE_UNCERTAINTY_DB=1.0).test_client()
+    got = client.get("/api/v1/fusion").json
+    assert got["snr_db"] == -10.0 and len(got["warnings"]) == 1
+    assert "SNR wall of -3.3 dB" in got["warnings"][0] and got["warnings"][0].startswith("snr_db:")
+    r = client.put("/api/v1/fusion", json={"snr_db": -3.0}, headers=admin)
+    assert r.status_code == 200 and r.json["warnings"] == []
+    # Unstated uncertainty (the default, 0 dB): no wall, no warning.
+    assert make_app().test_client().get("/api/v1/fusion").json["warnings"] == []

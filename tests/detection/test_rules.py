@@ -5,6 +5,8 @@ analytic system Pf/Pd against a seeded Monte Carlo run (channels serve as trials
 import numpy as np
 import pytest
 from numpy.testing import assert_allclose
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import stats
 
 from fusion.detection import energy, performance, rules, system
@@ -177,3 +179,22 @@ class TestDistinctCumulants:
         want = system.clipped_llr_cumulants(n, snr, trust, 3.0)
         for g, w in zip(got, want):
             np.testing.assert_array_equal(g, w)
+
+
+class TestProperties:
+    @settings(derandomize=True, max_examples=40, deadline=None, database=None)
+    @given(rule=st.sampled_from(sorted(rules.RULES)), seed=st.integers(0, 2**31 - 1),
+           n_nodes=st.integers(1, 6), n=st.integers(1, 400), snr=st.floats(0.0, 5.0),
+           target_pf=st.floats(1e-4, 0.4), prior=st.floats(1e-3, 1 - 1e-3), missing=st.floats(0.0, 0.6))
+    def test_probabilities_stay_in_unit_interval(self, rule, seed, n_nodes, n, snr, target_pf, prior, missing):
+        # Any energies (including extreme ones), any share of missing reports: P(occupied)
+        # lies in [0, 1] wherever a node reported, is NaN elsewhere, and never decides
+        # "occupied" without a report (the safety rule of DESIGN.md).
+        rng = np.random.default_rng(seed)
+        t = rng.gamma(n, 1.0 + snr * rng.random(), size=(n_nodes, 5)) * rng.choice([1e-6, 1.0, 1e3], size=(n_nodes, 5))
+        t[rng.random(t.shape) < missing] = np.nan
+        res = rules.fuse(t, n, rule=rule, target_pf=target_pf, snr=snr, prior=prior,
+                         k=min(2, n_nodes) if rule == "k_of_n" else None)
+        has = res.n_reporting > 0
+        assert np.all((res.p_occupied[has] >= 0) & (res.p_occupied[has] <= 1))
+        assert np.all(np.isnan(res.p_occupied[~has])) and not np.any(res.decision[~has])

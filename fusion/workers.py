@@ -1,0 +1,95 @@
+"""``occfuse serve --workers N`` (N > 1): the app under gunicorn, one fusion scheduler per worker, one leader.
+
+The master only binds the socket and supervises; each worker builds its own app (engine and pool after fork,
+no ``--preload``) and, in ``post_worker_init``, starts a :class:`~fusion.scheduler.FusionScheduler`, whose lease
+lets exactly one worker run the epochs (fusion/lease.py). ``worker_exit`` stops the scheduler and gives the
+lease up; ``child_exit`` (master) marks the worker dead for prometheus_client's multiprocess mode.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+
+from gunicorn import glogging
+from gunicorn.app.base import BaseApplication
+
+__all__ = ["GunicornServer", "options"]
+
+log = logging.getLogger("fusion.workers")
+_SCHEDULER = {}  # per worker process: its FusionScheduler
+
+
+def options(host: str, port: int, workers: int, threads: int) -> dict:
+    """gunicorn settings for `workers` processes of `threads` threads each (gthread: threads cover DB waits)."""
+    # No control socket: its default path is per user, so two servers on one host would fight over it.
+    return {"bind": f"[{host}]:{port}" if ":" in host else f"{host}:{port}", "workers": workers,
+            "worker_class": "gthread", "threads": threads, "timeout": 60, "graceful_timeout": 20,
+            "keepalive": 5, "preload_app": False, "control_socket_disable": True, "post_worker_init": _post_worker_init,
+            "worker_exit": _worker_exit, "child_exit": _child_exit, "when_ready": _when_ready}
+
+
+def _when_ready(server) -> None:
+    host, port = server.LISTENERS[0].getsockname()[:2]
+    shown = f"[{host}]" if ":" in host else host
+    print(f"occfuse serving on http://{shown}:{port} with {server.cfg.workers} workers", flush=True)
+
+
+def _post_worker_init(worker) -> None:
+    from .scheduler import FusionScheduler
+    from .server import tune_gc
+
+    tune_gc()  # the app is built: keep its objects out of the collector's scans (fusion.server.tune_gc)
+    _SCHEDULER["s"] = FusionScheduler(worker.wsgi).start()
+
+
+def _worker_exit(server, worker) -> None:
+    sched = _SCHEDULER.pop("s", None)
+    if sched is not None:
+        sched.shutdown(wait=True)
+    app = getattr(worker, "wsgi", None)
+    if app is not None and "occfuse.engine" in getattr(app, "extensions", {}):
+        app.extensions["occfuse.engine"].dispose()
+
+
+def _child_exit(server, worker) -> None:
+    if os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
+        from prometheus_client import multiprocess
+
+        multiprocess.mark_process_dead(worker.pid)
+
+
+class _Logger(glogging.Logger):
+    """gunicorn's own log lines in occfuse's format (JSON lines when LOG_FORMAT is json), tokens masked."""
+
+    def setup(self, cfg):
+        super().setup(cfg)
+        from .config import load_settings
+        from .logs import RedactTokens, formatter
+
+        try:
+            fmt = load_settings()["LOG_FORMAT"]
+        except Exception:  # the app reports bad settings itself
+            fmt = "text"
+        for logger in (self.error_log, self.access_log):
+            for handler in logger.handlers:
+                handler.setFormatter(formatter(fmt))
+                handler.addFilter(RedactTokens())
+
+
+class GunicornServer(BaseApplication):
+    """gunicorn in-process: :meth:`run` blocks until the master stops (SIGTERM: graceful, exit 0)."""
+
+    def __init__(self, options: dict, app_config: dict | None = None):
+        self._options = {**options, "logger_class": _Logger}
+        self._app_config = app_config
+        super().__init__()
+
+    def load_config(self):
+        for key, value in self._options.items():
+            self.cfg.set(key, value)
+
+    def load(self):
+        from . import create_app
+
+        return create_app(self._app_config)

@@ -283,7 +283,7 @@ def _fuse_soft(t, mask, n, rule, target_pf, snr, trust, clip):
         with np.errstate(invalid="ignore"):
             term = np.clip(s * (a * tz - b), -clip, clip)
         stat = np.sum(np.where(mask, term, 0.0), axis=0)
-        k1, k2, k3 = _distinct_cumulants(nn, g, s, clip)
+        k1, k2, k3 = system.clipped_llr_cumulants(nn, g, s, clip)
         log_lr = stat
     else:
         log_lr = np.sum(tz * a, axis=0) - _masked_node_sum(b, mask_f)
@@ -301,30 +301,6 @@ def _fuse_soft(t, mask, n, rule, target_pf, snr, trust, clip):
     # A statistic with no spread (every snr zero) carries no evidence: never occupied.
     decision = (stat > thr) & (K2 > 0)
     return stat, thr, log_lr, decision
-
-
-def _distinct_cumulants(nn, g, s, clip):
-    """:func:`system.clipped_llr_cumulants` once per distinct ``(N, snr, trust)``, spread back: exact.
-
-    A node has one ``N`` and one trust across channels, and channels share the design SNR until one is
-    learned, so an epoch of 1,000 nodes x 256 channels holds far fewer distinct terms than cells; each
-    costs a 96-point quadrature.
-    """
-    cols = [np.ravel(v).astype(float) for v in (nn, g, s)]
-    order = np.lexsort(cols[::-1])  # faster than np.unique(axis=0), which sorts a void view
-    sorted_cols = [c[order] for c in cols]
-    # A new group wherever any column changes (NaN never equals NaN, so each NaN cell is its own group).
-    starts = np.ones(order.size, dtype=bool)
-    for c in sorted_cols:
-        starts[1:] &= c[1:] == c[:-1]
-    starts = ~starts
-    starts[0] = True
-    group = np.cumsum(starts) - 1
-    firsts = [c[starts] for c in sorted_cols]
-    ks = system.clipped_llr_cumulants(*firsts, clip)
-    inverse = np.empty(order.size, dtype=np.intp)
-    inverse[order] = group
-    return tuple(k[inverse].reshape(np.shape(nn)) for k in ks)
 
 
 def _fuse_hard(t, mask, n, rule, target_pf, k, snr, pd, pf):

@@ -161,26 +161,6 @@ class TestNodeLlr:
         assert np.isnan(rules.node_llr(np.nan, 10, 1.0))
 
 
-class TestDistinctCumulants:
-    """The epoch computes weighted_llr cumulants once per distinct (N, snr, trust); it must equal the
-    cell-by-cell call exactly (same function on the same numbers), NaN cells included."""
-
-    def test_against_the_cell_by_cell_call(self):
-        from fusion.detection import system
-        from fusion.detection.rules import _distinct_cumulants
-
-        rng = np.random.default_rng(42)
-        n = np.full((40, 16), 4096.0)
-        n[5] = 1000.0
-        snr = np.where(rng.random((40, 16)) < 0.6, 0.1, rng.random((40, 16)))
-        snr[0, 0] = np.nan
-        trust = np.repeat(rng.random((40, 1)), 16, axis=1)
-        got = _distinct_cumulants(n, snr, trust, 3.0)
-        want = system.clipped_llr_cumulants(n, snr, trust, 3.0)
-        for g, w in zip(got, want):
-            np.testing.assert_array_equal(g, w)
-
-
 class TestProperties:
     @settings(derandomize=True, max_examples=40, deadline=None, database=None)
     @given(rule=st.sampled_from(sorted(rules.RULES)), seed=st.integers(0, 2**31 - 1),

@@ -74,3 +74,44 @@ def test_scheduler_prunes_only_while_leading(make_app, net):
     assert sched.prune() == 0 and _count(app) == 3  # not the leader: nothing
     sched.leading = True
     assert sched.prune() == 3 and _count(app) == 0  # batches of 2 until done (bounded by max_batches)
+
+
+def test_ingest_goes_on_while_a_prune_pass_runs(app, net):
+    # A pass over 300 old reports, one row per transaction with a 5 ms pause, takes over a second; reports
+    # posted meanwhile are all acknowledged, and some of them land between its first and last DELETE, i.e.
+    # ingest takes the write lock between batches instead of waiting for the whole pass.
+    import threading
+    import time
+
+    net.register("old")
+    for start in range(0, 300, 50):
+        batch = {"reports": [net.report("old", {"ch0": -90.0}, seq=s + 1) for s in range(start, start + 50)]}
+        assert net.post("old", batch).status_code == 201
+    _age_reports(app, list(range(1, 301)), 2 * 86400)
+    net.register("young")
+    engine = app.extensions["occfuse.engine"]
+    deletes = []
+
+    @event.listens_for(engine, "after_cursor_execute")
+    def _spy(conn, cursor, statement, params, context, executemany):
+        if statement.lstrip().upper().startswith("DELETE FROM REPORT"):
+            deletes.append(time.monotonic())
+
+    pruned = []
+    worker = threading.Thread(target=lambda: pruned.append(
+        prune_reports(engine, 86400, batch=1, max_batches=1000, pause_s=0.005)))
+    worker.start()
+    try:
+        deadline = time.monotonic() + 30  # bounded wait for the pass to start
+        while not deletes and time.monotonic() < deadline:
+            time.sleep(0.001)
+        acked = []
+        for _ in range(20):
+            assert net.post("young", net.report("young", {"ch0": -95.0})).status_code == 201
+            acked.append(time.monotonic())
+    finally:
+        worker.join(timeout=60)
+        event.remove(engine, "after_cursor_execute", _spy)
+    assert pruned == [300]
+    assert any(deletes[0] < t < deletes[-1] for t in acked)
+    assert _count(app) == 20

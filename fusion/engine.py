@@ -6,6 +6,7 @@ tests call it directly with a chosen ``now``.
 
 from __future__ import annotations
 
+import io
 import math
 import time
 from dataclasses import dataclass
@@ -112,12 +113,29 @@ def _load_state(session: Session, key: str) -> dict | None:
     return row.value if row else None
 
 
-def _save_state(session: Session, key: str, value: dict) -> None:
+def _save_state(session: Session, key: str, value: dict, blob: bytes | None = None) -> None:
     row = session.get(FusionState, key)
     if row is None:
-        session.add(FusionState(key=key, value=value))
+        session.add(FusionState(key=key, value=value, blob=blob))
     else:
-        row.value = value
+        row.value, row.blob = value, blob
+
+
+def _pack_nodes(node_ids: list[int], arrays: dict[str, np.ndarray]) -> bytes:
+    """The learner's per-node arrays and the node id of each row, as one numpy .npz."""
+    buf = io.BytesIO()
+    np.savez(buf, node_id=np.asarray(node_ids, dtype=np.int64), **arrays)
+    return buf.getvalue()
+
+
+def _unpack_nodes(blob: bytes | None) -> dict[int, dict[str, np.ndarray]]:
+    """node id -> that node's row of every array, from :func:`_pack_nodes` output (empty for None)."""
+    if not blob:
+        return {}
+    with np.load(io.BytesIO(blob), allow_pickle=False) as z:
+        arrays = {name: z[name] for name in z.files}
+    ids = arrays.pop("node_id")
+    return {int(node_id): {name: a[i] for name, a in arrays.items()} for i, node_id in enumerate(ids)}
 
 
 def _json_arrays(state: dict) -> dict:
@@ -131,13 +149,16 @@ def _reliability(session: Session, nodes: list[Node], revision: int, n_channels:
         if node.id not in rows:
             rows[node.id] = NodeReliability(node_id=node.id, flags=[], state={})
             session.add(rows[node.id])
-    glob = _load_state(session, "reliability")
-    if glob is None:
+    stored = session.get(FusionState, "reliability")
+    if stored is None:
         model = ReliabilityModel().resize(len(nodes), n_channels=n_channels)
     else:
+        glob = stored.value
         same_plan = glob.get("revision") == revision
+        packed = _unpack_nodes(stored.blob)
+        # Packed arrays first; per-node JSON is what databases written before migration 0003 hold.
         model = ReliabilityModel.from_state(
-            glob["model"], nodes=[rows[n.id].state.get("model") for n in nodes],
+            glob["model"], nodes=[packed.get(n.id) or rows[n.id].state.get("model") for n in nodes],
             n_channels=None if same_plan and glob["model"]["n_channels"] == n_channels else n_channels)
     return model, rows
 
@@ -236,7 +257,6 @@ def run_epoch(session: Session, now: datetime, config: Mapping[str, Any]) -> Epo
 
     if n_nodes:
         learn_epoch(model, x, fused, now_s=now.timestamp(), max_age_s=fs.max_age_s)
-        state = model.get_state()
         for i, node in enumerate(x.nodes):
             row = rel_rows[node.id]
             a_d, b_d = model.prior_pd
@@ -246,10 +266,11 @@ def run_epoch(session: Session, now: datetime, config: Mapping[str, Any]) -> Epo
             row.noise_dbm = None if np.isnan(model.noise_dbm_[i]) else float(model.noise_dbm_[i])
             row.trust = float(model.trust_[i])
             row.flags = list(model.flags_[i])
-            row.state = {"model": state["nodes"][i]}
+            if row.state:
+                row.state = {}  # the learner state now lives packed in fusion_state (see _pack_nodes)
             row.updated_at = now
-        _save_state(session, "reliability", {"revision": plan.revision,
-                                             "model": {**state, "nodes": []}})
+        _save_state(session, "reliability", {"revision": plan.revision, "model": model.get_state(include_nodes=False)},
+                    blob=_pack_nodes([n.id for n in x.nodes], model.node_arrays()))
 
     epoch = Epoch(started_at=now, duration_s=0.0, plan_revision=plan.revision, rule=fs.rule, params=params,
                   n_reports=x.n_reports)

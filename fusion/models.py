@@ -214,6 +214,9 @@ class FusionState(Base):
 
     key: Mapped[str] = mapped_column(String(64), primary_key=True)
     value: Mapped[dict] = mapped_column(JSON)
+    # Bulk numeric state (the learner's per-node arrays as a numpy .npz): at 1,000 nodes x 256 channels JSON
+    # encoding and decoding of it cost more than the whole epoch's math.
+    blob: Mapped[bytes | None] = mapped_column(LargeBinary)
     updated_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow, onupdate=utcnow)
 
     def __repr__(self) -> str:

@@ -178,7 +178,8 @@ class NodeReliability(Base):
     trust: Mapped[float] = mapped_column(Float, default=1.0)
     flags: Mapped[list] = mapped_column(JSON, default=list)
     pinned: Mapped[str | None] = mapped_column(String(16))  # trusted | excluded | None
-    state: Mapped[dict] = mapped_column(JSON, default=dict)  # learner state the columns above do not hold
+    # Learner state as written before migration 0003; it now lives packed in fusion_state.blob.
+    state: Mapped[dict] = mapped_column(JSON, default=dict)
     updated_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
 
     def __repr__(self) -> str:

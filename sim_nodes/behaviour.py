@@ -70,7 +70,7 @@ class Behaviour:
         if self.kind != "falsify" or t < self.after_s:
             return power_mw
         # A plausible lie: a genuine noise draw, Gamma(N, 1) / N times the floor, with a
-        # Gaussian signal's (1 + snr) scale where it claims a signal (METHODS.md section 1).
+        # Gaussian signal's (1 + snr) scale where it claims a signal (the Gaussian-signal law of the energy statistic).
         fake = np.full(power_mw.shape, self.mode == "occupied")
         if self.mode == "random":
             fake = rng.random(power_mw.shape) < 0.5

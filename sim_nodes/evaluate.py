@@ -257,7 +257,7 @@ def _draw(setup, m, occupied, rng):
             mm = setup.fading_m
             g = g * rng.gamma(mm, 1.0 / mm, shape)  # |h|^2, unit mean (Nakagami 1960; Rayleigh m = 1)
         if setup.signal == "gaussian":
-            t = rng.gamma(n, 1.0 + g, shape)  # T ~ Gamma(N, 1 + g), METHODS.md section 1
+            t = rng.gamma(n, 1.0 + g, shape)  # T ~ Gamma(N, 1 + g): Gaussian signal, exact
         else:
             t = rng.noncentral_chisquare(2 * n, 2 * n * g, shape) / 2  # 2T ~ ncx2(2N, 2Ng)
     else:
@@ -412,7 +412,7 @@ def analytic_rates(prep, setup, thresholds, target_pf):
     Counting rules: Poisson-binomial of the per-node vote rates (Varshney 1997), Pd per node from Urkowitz
     (AWGN) or Digham, Alouini and Simon (2007) (Rayleigh, Nakagami-m).  Chair-Varshney: enumeration of the
     2**n vote patterns.  EGC: gamma / noncentral chi-square of the sum (AWGN), the Nakagami series with
-    shape ``n m`` for identical faded nodes (METHODS.md section 2), the Moschopoulos sum for a Gaussian
+    shape ``n m`` for identical faded nodes (Digham, Alouini and Simon 2007), the Moschopoulos sum for a Gaussian
     signal; MRC and LLR reduce to EGC for identical nodes.  Falsifiers and noise-floor errors enter the hard
     rules only; ``weighted_llr`` (clipped) has no closed form.
     """
@@ -453,7 +453,7 @@ def analytic_rates(prep, setup, thresholds, target_pf):
         xe = x / w[0]  # sum T > x / w for equal weights
         return stats.ncx2.sf(2 * xe, 2 * n.sum(), 2 * np.sum(n * g)), qf
     if identical:
-        # n i.i.d. Nakagami-m nodes: the total SNR is Gamma(n m, .), METHODS.md section 2.
+        # n i.i.d. Nakagami-m nodes: the total SNR is Gamma(n m, .) (Digham, Alouini and Simon 2007).
         xe = x / w[0]
         return energy.detection_nakagami(xe, n.sum(), g[0], setup.n_nodes * setup.fading_m), qf
     return None

@@ -7,7 +7,7 @@ timeline, node behaviours), then produces one node's sweep at a time with
 (``tests/sim/test_network.py``):
 
 ``fast``
-    Draw the energy statistic straight from its exact distribution (METHODS.md section 1):
+    Draw the energy statistic straight from its exact distribution (Urkowitz 1967; Gaussian signal: gamma law):
     ``T ~ Gamma(N, 1 + snr)`` for a noise-like (Gaussian) signal, ``2T ~ ncx2(2N, 2N snr)``
     for a constant-envelope OFDM-like one; ``power = sigma^2 T / N``.
 ``iq``
@@ -173,7 +173,7 @@ class SimNetwork:
         n = int(self._n_samples[i])
         p = self.scenario.propagation
         on = self.transmitters_on(t)
-        # Block fading per (transmitter, channel) link and sweep (METHODS.md section 8).
+        # Block fading per (transmitter, channel) link and sweep (common practice in link simulation).
         h2 = prop.fading_power_gain(self.mean_rx_dbm.shape[:2], p.fading, p.nakagami_m, rng)
         sig_mw = np.sum(np.where(on[:, None], 10 ** (self.mean_rx_dbm[:, :, i] / 10) * h2, 0.0), axis=0)
         noise_mw = 10 ** ((self.nominal_noise_dbm[i] + self.noise_error_db[i] + beh.noise_offset_db(t)) / 10)
@@ -186,7 +186,7 @@ class SimNetwork:
         return NodeSweep(self.node_names[i], float(t), n, 10 * np.log10(power_mw), self.nominal_noise_dbm[i].copy())
 
     def _fast(self, n, snr, rng):
-        """``T / N`` drawn from its exact law; METHODS.md section 1."""
+        """``T / N`` drawn from its exact law."""
         if self.scenario.propagation.signal == "gaussian":
             return rng.gamma(n, 1.0 + snr) / n  # T ~ Gamma(N, 1 + snr), exact
         return rng.noncentral_chisquare(2 * n, 2 * n * snr) / (2 * n)  # 2T ~ ncx2(2N, 2N snr)

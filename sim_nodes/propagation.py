@@ -1,6 +1,6 @@
 """Radio propagation for the simulated network: path loss, shadowing, fading, thermal noise.
 
-Received power of node i from transmitter j, in dB (METHODS.md section 8):
+Received power of node i from transmitter j, in dB:
 
     P_ij = EIRP_j + G_rx - PL(d_ij, f) - X_ij          (mean over fading)
     P_ij * |h|^2                                      (one measurement: block fading)

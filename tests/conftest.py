@@ -196,7 +196,7 @@ def net(client, admin):
 def energy_dbm(rng, n_samples: int, snr: float, noise_dbm: float = -100.0) -> float:
     """Mean power (dBm) of n complex samples: noise CN(0, sigma^2) plus a Gaussian signal of per-sample SNR `snr`.
 
-    Exact law (METHODS.md section 1, common practice): N * P / sigma^2 ~ Gamma(N, 1 + snr).
+    Exact law (Gaussian signal, common practice): N * P / sigma^2 ~ Gamma(N, 1 + snr).
     """
     t = rng.gamma(n_samples, 1.0 + snr)
     return noise_dbm + 10 * np.log10(t / n_samples)

@@ -72,7 +72,7 @@ def test_tone_in_a_raw_file_is_reported_with_its_power(tmp_path):
     expect = 10 * np.log10(a**2 + SIGMA2 * 200e3 / FS) - 30
     for n, p, nz in ch["c2"]:
         assert abs(p - expect) < 0.5
-        # occupied by energy detection at Pf = 0.01 (Urkowitz 1967; METHODS.md section 1)
+        # occupied by energy detection at Pf = 0.01 (Urkowitz 1967)
         assert normalise(p, nz, n) > threshold(0.01, n)
     for cid in ("c0", "c1", "c3"):
         for n, p, nz in ch[cid]:

@@ -93,10 +93,10 @@ def test_a_fusion_change_applies_from_the_next_epoch(app, net):
 
 
 def test_window_pooling_meets_the_target_pf_of_the_pooled_gamma_law(app, net):
-    """Pooling two reports of N samples is one statistic of 2N samples: under H0, Gamma(2N, 1) (METHODS.md §1).
+    """Pooling two reports of N samples is one statistic of 2N samples: under H0, Gamma(2N, 1) (Urkowitz 1967).
 
     With 200 nodes of pure noise, the fraction of single-node egc-style exceedances at the pooled threshold
-    must match Pf within 4 binomial standard errors (METHODS.md §9).
+    must match Pf within 4 binomial standard errors (common practice).
     """
     from fusion.detection import energy
 

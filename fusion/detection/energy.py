@@ -1,6 +1,6 @@
 """Single-node energy detection: normalisation, thresholds, Pf and Pd.
 
-Conventions (see METHODS.md section 0): a node takes ``N`` complex baseband samples per
+Conventions: a node takes ``N`` complex baseband samples per
 channel and measurement; ``T = sum |y|^2 / sigma^2`` is the *normalised* energy, so under
 H0 ``T ~ Gamma(N, 1)``.  Every threshold here (``tau``) is on ``T``, not on ``Y = 2T``
 (Digham's scale) nor on ``T/N``.  ``snr`` is always the linear *per-sample* SNR
@@ -77,8 +77,7 @@ def normalise(power_dbm, noise_dbm, n_samples):
     Notes
     -----
     ``T = N * 10**((P_dBm - sigma_dBm) / 10)``; the normalisation by each node's own noise
-    floor is what makes the H0 law parameter-free (METHODS.md section 0, after
-    Urkowitz [1]_).
+    floor is what makes the H0 law parameter-free (after Urkowitz [1]_).
 
     References
     ----------
@@ -209,7 +208,7 @@ def detection_gaussian(tau, n_samples, snr):
     """Detection probability of a circular Gaussian signal in AWGN.
 
     ``T ~ Gamma(N, 1 + gamma_s)`` under H1, so ``Pd = gammaincc(N, tau / (1 + gamma_s))``
-    exactly (METHODS.md section 1; Urkowitz [1]_ treats the deterministic case).
+    exactly (Urkowitz [1]_ treats the deterministic case).
 
     Parameters
     ----------
@@ -236,7 +235,7 @@ def detection_gaussian(tau, n_samples, snr):
 def _nb_series(tau, n, mean_total_snr, m, tol=1e-14, block=256):
     """Pd averaged over Gamma(m, mean/m) total SNR: sum_j NB(j; m, p) gammaincc(N + j, tau).
 
-    Derived from the Poisson mixture of ncx2 (METHODS.md section 2); exact for any m > 0.
+    Derived from the Poisson mixture of ncx2 (Digham, Alouini and Simon); exact for any m > 0.
     Terms are summed in blocks of j.  Once ``N + j`` is far above ``tau``, every later
     ``gammaincc`` is 1 to double precision, so the rest of the sum is the negative-binomial
     tail mass ``nbinom.sf``, added in closed form.

@@ -37,7 +37,7 @@ __all__ = ["ReliabilityModel", "FLAGS", "PINS"]
 FLAGS = ("silent", "stuck", "suspect", "drift")
 PINS = ("trusted", "excluded")
 _STATE_VERSION = 1
-_CLIP = 1e-6  # keeps ln(Pd/Pf) finite for always-yes / always-no nodes (METHODS.md section 3)
+_CLIP = 1e-6  # keeps ln(Pd/Pf) finite for always-yes / always-no nodes (common practice)
 
 # Per-node state: name -> (shape kind, fill value).  "n" = scalar per node, "c" = per channel,
 # "w" = per noise-window slot.  One table drives allocation, resizing and the JSON export.
@@ -156,7 +156,7 @@ class ReliabilityModel:
     confident decisions (Rawat et al. put the blind point at half the nodes flipping).
 
     With ``k`` votes of 1 among ``n`` labelled occupied observations the Pd posterior is
-    ``Beta(a + k, b + n - k)`` (agreement counting, METHODS.md section 5.4 b); the mean is the
+    ``Beta(a + k, b + n - k)`` (agreement counting against the fused decisions, a hard-label step of Dawid & Skene 1979); the mean is the
     Bayes predictive vote rate, so plugging it into the Chair-Varshney weights [2]_ needs no
     further shrinkage.  Fusion errors bias these counts; the confidence bar and the
     leave-one-out check bound that bias, and forgetting lets a wrong start wash out.
@@ -442,7 +442,7 @@ class ReliabilityModel:
 
     def _learn_snr(self, x, mask):
         # E[T] = N(1 + gamma_s) under H1 for deterministic and Gaussian signals alike
-        # (METHODS.md section 1), so T/N - 1 is an unbiased per-sample SNR estimate.
+        # (Urkowitz 1967), so T/N - 1 is an unbiased per-sample SNR estimate.
         lam = np.where(mask, 1.0 - 1.0 / self.snr_memory, 1.0)
         self.snr_sum_ = lam * self.snr_sum_ + np.where(mask, x, 0.0)
         self.snr_weight_ = lam * self.snr_weight_ + mask

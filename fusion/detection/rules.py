@@ -113,7 +113,7 @@ def node_llr(t, n_samples, snr):
     With ``T ~ Gamma(N, 1)`` under H0 and ``Gamma(N, 1+snr)`` under H1 the LLR is linear
     in ``T`` with weight ``snr/(1+snr)``: MRC-like at low SNR, EGC-like at high SNR (Ma,
     Zhao and Li [1]_).  For a deterministic signal at the low SNRs of spectrum sensing it
-    is within 1e-3 in Pd of the exact non-linear LLR (METHODS.md section 4.4).
+    is within 1e-3 in Pd of the exact non-linear LLR (checked in the tests).
 
     References
     ----------

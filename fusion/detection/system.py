@@ -34,7 +34,7 @@ __all__ = [
     "clipped_llr_cumulants",
 ]
 
-# Probabilities are kept this far from 0 and 1 before taking logs (METHODS.md section 3).
+# Probabilities are kept this far from 0 and 1 before taking logs (common practice).
 EPS = 1e-6
 # From this many samples on, clipped-LLR cumulants use the Wilson-Hilferty form of the gamma law.
 WH_MIN_SAMPLES = 50
@@ -437,7 +437,7 @@ def clipped_llr_cumulants(n_samples, snr, trust=1.0, clip=np.inf, *, hypothesis=
 
     ``l(T) = T snr/(1 + snr) - N ln(1 + snr)`` is the Gaussian-signal log-likelihood
     ratio of the normalised energy (exact for a circular Gaussian signal, Ma, Zhao and
-    Li [1]_; METHODS.md section 4.3).
+    Li [1]_).
 
     Parameters
     ----------

@@ -34,7 +34,7 @@ def fill_reports(path: Path, n_nodes: int, n_channels: int, at: datetime, rng, s
     conn = sqlite3.connect(path, isolation_level=None)
     snr = np.where(np.arange(n_channels) % 8 == 0, 0.3, 0.0)
     n = 4096
-    t = rng.gamma(n, 1.0 + snr, size=(n_nodes, n_channels))  # exact law of N P / sigma^2 (METHODS.md section 1)
+    t = rng.gamma(n, 1.0 + snr, size=(n_nodes, n_channels))  # exact law of N P / sigma^2 (Gaussian signal)
     powers = (-100.0 + 10 * np.log10(t / n)).astype("<f4")
     noise = np.full(n_channels, -100.0, "<f4").tobytes()
     stamp = at.astimezone(timezone.utc).replace(tzinfo=None).isoformat(sep=" ")

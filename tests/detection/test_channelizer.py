@@ -10,7 +10,7 @@ from fusion.detection.channelizer import channel_bins, channel_power, equivalent
 
 
 def cn(rng, shape, power=1.0):
-    """Circular complex Gaussian samples with E|w|^2 = power (METHODS.md section 0)."""
+    """Circular complex Gaussian samples with E|w|^2 = power (common practice)."""
     return np.sqrt(power / 2) * (rng.standard_normal(shape) + 1j * rng.standard_normal(shape))
 
 
@@ -68,7 +68,7 @@ class TestChannelPower:
 
     def test_noise_band_power_follows_gamma_law_exactly_with_boxcar(self):
         # With the rectangular window and non-overlapping segments the K*S bin powers are
-        # i.i.d. exponential, so N*P/sigma^2 ~ Gamma(K*S, 1) (METHODS.md section 1, H0 law).
+        # i.i.d. exponential, so N*P/sigma^2 ~ Gamma(K*S, 1) (the H0 law, Urkowitz 1967).
         rng = np.random.default_rng(2)
         fs, m, s = 800e3, 256, 4
         x = cn(rng, (3000, m * s), power=2.0)

@@ -1,7 +1,6 @@
 """Tests for fusion.detection.energy against scipy.stats and published closed forms.
 
-Literal values are METHODS.md sections 1, 2 and 6 (recomputed there with scipy); each
-check names the primary source it reproduces.
+Literal values were recomputed with scipy from the primary source each check names.
 """
 
 import numpy as np
@@ -13,7 +12,7 @@ from scipy import integrate, special, stats
 
 from fusion.detection import energy
 
-# Closed forms against each other: rtol 1e-9, atol 1e-12 (METHODS.md section 9).
+# Closed forms against each other: rtol 1e-9, atol 1e-12 (round-off of the special functions).
 EXACT = dict(rtol=1e-9, atol=1e-12)
 
 
@@ -48,7 +47,7 @@ class TestThreshold:
         pf = np.array([1e-4, 0.01, 0.1, 0.5])
         n = np.array([[1], [5], [1000]])
         assert_allclose(energy.threshold(pf, n), stats.chi2.isf(pf, 2 * n) / 2, **EXACT)
-        # N = 1000, Pf = 0.1: tau = 1040.734308 (METHODS.md section 1, Liang et al. 2008 setup).
+        # N = 1000, Pf = 0.1: tau = 1040.734308 (Liang et al. 2008 setup; scipy.stats.gamma.isf).
         assert_allclose(energy.threshold(0.1, 1000), 1040.734308, rtol=1e-9)
 
     def test_edge_cases(self):
@@ -82,7 +81,7 @@ class TestFalseAlarm:
         tau = energy.threshold(0.1, n)
         se = np.sqrt(0.1 * 0.9 / trials)
         assert abs(np.mean(t > tau) - 0.1) < 4 * se
-        # KS test of T against Gamma(N, 1) (METHODS.md section 9); p > 1e-3 fails 1 in 1000 seeds.
+        # KS test of T against Gamma(N, 1) (scipy.stats.kstest); p > 1e-3 fails 1 in 1000 seeds.
         assert stats.kstest(t[:20_000], stats.gamma(n).cdf).pvalue > 1e-3
 
 
@@ -93,7 +92,7 @@ class TestDetectionAwgn:
 
     def test_against_reference(self):
         # Digham et al. (2007) / Urkowitz (1967): Pd = Q_u(sqrt(2 gamma), sqrt(lambda)), u = 5,
-        # gamma = 10 total (per-sample 2): METHODS.md section 1 values.
+        # gamma = 10 total (per-sample 2): values recomputed with scipy.stats.ncx2.
         assert_allclose(energy.detection_awgn(energy.threshold(0.01, 5), 5, 2.0), 0.7353119162, rtol=1e-9)
         assert_allclose(energy.detection_awgn(energy.threshold(0.1, 5), 5, 2.0), 0.9389252795, rtol=1e-9)
         # N = 1000, -10 dB per sample, Pf = 0.1: Pd = 0.9583528131.
@@ -128,7 +127,7 @@ class TestDetectionGaussian:
             energy.detection_gaussian(10.0, 5, -0.5)
 
     def test_against_reference(self):
-        # Gaussian signal: T ~ Gamma(N, 1 + snr) exactly (METHODS.md section 1).
+        # Gaussian signal: T ~ Gamma(N, 1 + snr) exactly (common practice).
         tau = energy.threshold(0.1, 1000)
         assert_allclose(energy.detection_gaussian(tau, 1000, 0.1), 0.9577161904, rtol=1e-9)
         assert_allclose(energy.detection_gaussian(tau, 1000, 0.1), stats.gamma.sf(tau, 1000, scale=1.1), **EXACT)
@@ -137,7 +136,7 @@ class TestDetectionGaussian:
         assert_allclose(energy.detection_gaussian(4.0, 3, 0.0), energy.false_alarm(4.0, 3), **EXACT)
 
 
-# Digham et al. (2007) table values, u = 5, gamma_bar = 10 total (METHODS.md section 2).
+# Digham et al. (2007) table values, u = 5, gamma_bar = 10 total (recomputed with scipy).
 FADING = {
     0.01: {"rayleigh": 0.5093999556, 2: 0.5830748498, 3: 0.6184877277, 0.5: 0.4224061127},
     0.1: {"rayleigh": 0.7017129954, 2: 0.7907857119, 3: 0.8305262724, 0.5: 0.5909115717},
@@ -183,14 +182,14 @@ class TestDetectionNakagami:
     @pytest.mark.parametrize("pf", [0.01, 0.1])
     @pytest.mark.parametrize("m", [0.5, 2, 3])
     def test_against_reference(self, pf, m):
-        # Digham et al. (2007) Nakagami-m values (METHODS.md section 2), and quad integration.
+        # Digham et al. (2007) Nakagami-m values (recomputed with scipy), and quad integration.
         tau = energy.threshold(pf, 5)
         assert_allclose(energy.detection_nakagami(tau, 5, 2.0, m), FADING[pf][m], rtol=1e-9)
         assert_allclose(energy.detection_nakagami(tau, 5, 2.0, m), _quad_average(tau, 5, 10.0, m), rtol=1e-8)
 
     def test_against_digham_integer_m_form(self):
-        # Digham et al. (2007) integer-m closed form with Laguerre polynomials, as transcribed
-        # in METHODS.md section 2 (marked there [M] as a transcription, [H] numerically).
+        # Digham et al. (2007) integer-m closed form with Laguerre polynomials, transcribed from
+        # the paper (from memory of its notation) and checked numerically against quad below.
         m, u, gbar = 2, 5, 10.0
         lam = 2 * energy.threshold(0.01, u)
         beta = m / (m + gbar)
@@ -226,7 +225,7 @@ class TestSnrWall:
             energy.snr_wall(-1.0)
 
     def test_against_reference(self):
-        # Tandra & Sahai (2008): wall = rho - 1/rho, rho = 10^(x/10); METHODS.md section 6 table.
+        # Tandra & Sahai (2008): wall = rho - 1/rho, rho = 10^(x/10).
         x = np.array([0.1, 0.5, 1.0, 2.0])
         walls_db = np.array([-13.3671594, -6.368253244, -3.329234333, -0.2048083054])
         assert_allclose(10 * np.log10(energy.snr_wall(x)), walls_db, rtol=1e-9)

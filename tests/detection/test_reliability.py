@@ -4,10 +4,10 @@ Sources of the checks:
 - Beta-binomial conjugacy: a Beta(a, b) prior and k successes in n Bernoulli trials give a
   Beta(a + k, b + n - k) posterior (Gelman et al., "Bayesian Data Analysis", ch. 2; from
   memory).  Quantiles and moments are recomputed with scipy.stats.beta.
-- Energy-detector laws (Urkowitz 1967; Digham, Alouini, Simon 2007; METHODS.md section 1):
+- Energy-detector laws (Urkowitz 1967; Digham, Alouini, Simon 2007):
   T ~ Gamma(N, 1) under H0, 2T ~ ncx2(2N, 2N snr) under H1, E[T] = N(1 + snr) and
   Var[T] = N(1 + 2 snr) for a deterministic signal (Liang et al. 2008).
-- Agreement counting against fused decisions (METHODS.md section 5.4 b), Chair & Varshney
+- Agreement counting against fused decisions (a hard-label step of Dawid & Skene 1979), Chair & Varshney
   (1986) vote weights for the leave-one-out contribution.
 """
 

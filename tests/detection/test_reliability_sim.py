@@ -1,14 +1,14 @@
 """Simulated networks: reliability learning inside the fusion loop, without ground truth.
 
 Every run is seeded.  Energies come from the exact laws (Urkowitz 1967; Digham, Alouini,
-Simon 2007; METHODS.md section 1): ``T ~ Gamma(N, 1)`` under H0 and
+Simon 2007): ``T ~ Gamma(N, 1)`` under H0 and
 ``2T ~ ncx2(2N, 2N snr)`` under H1; powers are ``sigma^2 T / N`` in dBm.  Falsifiers overwrite
 their reports (always-free, always-occupied and random models of Chen, Park and Bian,
-IEEE INFOCOM 2008, and Rawat et al. 2011; METHODS.md section 5.1).  Rates are learned by
+IEEE INFOCOM 2008, and Rawat et al. 2011).  Rates are learned by
 agreement counting against confident fused decisions (a hard-label step of Dawid & Skene
 1979) and fused with ``weighted_llr`` (Ma, Zhao, Li 2008 LLR, trust-weighted) or plain
 ``majority``; the majority's exact Pf with falsifiers is the Poisson-binomial tail
-(METHODS.md section 3).  Tolerances are 4 binomial standard errors unless stated.
+(Varshney 1997).  Tolerances are 4 binomial standard errors unless stated.
 """
 
 import numpy as np
@@ -121,7 +121,7 @@ def first_flagged(flags, node, name="suspect"):
 
 
 def poisson_binomial_sf(ps, k):
-    """P(sum of independent Bernoulli(ps) >= k) by repeated convolution (METHODS.md section 3)."""
+    """P(sum of independent Bernoulli(ps) >= k) by repeated convolution (Poisson-binomial law)."""
     pmf = np.array([1.0])
     for p in ps:
         pmf = np.convolve(pmf, [1 - p, p])
@@ -159,7 +159,7 @@ class TestFalsifiers:
         pd10, pf10, se_d10, se_f10 = rates(occ, maj10["decision"], 0)
         pd7, pf7, se_d7, se_f7 = rates(occ, maj7["decision"], 0)
         # Exact rates (Poisson-binomial tail of the votes): the local Pf is set for n
-        # identical honest nodes, betaincinv(k, n - k + 1, target) (METHODS.md section 3).
+        # identical honest nodes, betaincinv(k, n - k + 1, target) (binomial tail, Varshney 1997).
         g = 10 ** (HONEST_SNR_DB / 10)
         want = {}
         for n, k in ((10, 6), (7, 4)):

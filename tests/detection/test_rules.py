@@ -18,7 +18,7 @@ TRIALS = 40_000
 
 
 def _four_se(p, n=TRIALS):
-    """Four binomial standard errors (METHODS.md section 9)."""
+    """Four binomial standard errors (common practice)."""
     return 4 * np.sqrt(p * (1 - p) / n)
 
 
@@ -89,7 +89,7 @@ class TestFuse:
             assert abs(perf.qf - TARGET) < 0.1 * TARGET
 
     def test_chair_varshney_threshold_is_the_np_atom(self):
-        # METHODS.md section 3 (Chair & Varshney 1986 rule, NP form): with these node rates
+        # Chair & Varshney (1986) rule in Neyman-Pearson form (value recomputed by enumeration): with these node rates
         # the best non-randomised rule for Qf <= 0.05 is Lambda > -0.06371581439.
         pd = np.array([0.90, 0.80, 0.70, 0.60, 0.95])[:, None]
         pf = np.array([0.10, 0.05, 0.20, 0.10, 0.30])[:, None]
@@ -111,12 +111,12 @@ class TestFuse:
 
     def test_posterior_matches_bayes_rule(self):
         # LLR posterior: expit(logit(prior) + sum l_i) with the Gaussian-signal LLR
-        # (Ma, Zhao & Li 2008); METHODS.md single-node check l(T=15, N=10, snr=1) = 0.5685281944.
+        # (Ma, Zhao & Li 2008); single-node check l(T=15, N=10, snr=1) = 15/2 - 10 ln 2.
         res = rules.fuse(np.array([[15.0]]), 10, rule="llr", target_pf=0.1, snr=1.0, prior=0.3)
         l = 15 / 2 - 10 * np.log(2)
         assert_allclose(res.log_lr, l, rtol=1e-12)
         assert_allclose(res.p_occupied, 1 / (1 + np.exp(-(np.log(0.3 / 0.7) + l))), rtol=1e-12)
-        # METHODS.md: Lambda = 1.5 with P1 = 0.3 gives 0.6576191251.
+        # Bayes' rule by hand: Lambda = 1.5 with P1 = 0.3 gives 0.6576191251.
         t = np.array([[1.5 + 10 * np.log(2)]]) * 2  # l = T/2 - 10 ln 2 = 1.5
         res = rules.fuse(t, 10, rule="llr", target_pf=0.1, snr=1.0, prior=0.3)
         assert_allclose(res.p_occupied, 0.6576191251, rtol=1e-9)

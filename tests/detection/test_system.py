@@ -1,8 +1,7 @@
 """Tests for fusion.detection.system and .performance: hard-fusion probabilities,
 optimal k, Chair-Varshney, Moschopoulos, the shifted-gamma law, and per-rule analytics.
 
-Literal values are from METHODS.md sections 3 and 4 (recomputed there); each check names
-the primary source.
+Literal values were recomputed with scipy from the primary source each check names.
 """
 
 import numpy as np
@@ -14,7 +13,7 @@ from scipy import integrate, stats
 
 from fusion.detection import performance, rules, system
 
-# Closed forms: rtol 1e-9, atol 1e-12 (METHODS.md section 9).
+# Closed forms: rtol 1e-9, atol 1e-12 (round-off of the special functions).
 EXACT = dict(rtol=1e-9, atol=1e-12)
 PD5 = np.array([0.90, 0.80, 0.70, 0.60, 0.95])
 PF5 = np.array([0.10, 0.05, 0.20, 0.10, 0.30])
@@ -48,7 +47,7 @@ class TestKOfNProbability:
             system.k_of_n_probability([0.1, 0.2, 0.3], 4)
 
     def test_against_reference(self):
-        # Binomial formula (Varshney 1997): n = 10, Pf = 0.05, Pd = 0.6 (METHODS.md section 3).
+        # Binomial formula (Varshney 1997): n = 10, Pf = 0.05, Pd = 0.6 (recomputed with scipy.stats.binom).
         pd, pf = np.full(10, 0.6), np.full(10, 0.05)
         for k in range(1, 11):
             assert_allclose(system.k_of_n_probability(pd, k), stats.binom.sf(k - 1, 10, 0.6), **EXACT)
@@ -60,7 +59,7 @@ class TestKOfNProbability:
         # OR = 1 - prod(1 - p), AND = prod(p) for heterogeneous nodes.
         assert_allclose(system.k_of_n_probability(PD5, 1), 1 - np.prod(1 - PD5), **EXACT)
         assert_allclose(system.k_of_n_probability(PF5, 5), np.prod(PF5), **EXACT)
-        # Heterogeneous counting rules, METHODS.md section 3 (Poisson-binomial), rounded there to 5 d.p.
+        # Heterogeneous counting rules, Poisson-binomial law, values rounded to 5 d.p.
         qd = [0.99988, 0.99558, 0.94648, 0.72078, 0.28728]
         qf = [0.56908, 0.15823, 0.02133, 0.00133, 3e-05]
         for k in range(1, 6):
@@ -81,7 +80,7 @@ class TestOptimalK:
 
     @pytest.mark.parametrize("n,pd,pf,k", [(10, 0.6, 0.05, 3), (10, 0.9, 0.1, 5), (5, 0.7, 0.2, 3)])
     def test_against_reference(self, n, pd, pf, k):
-        # Zhang, Mallik & Letaief (2009) closed form; cases and k_opt from METHODS.md section 3.
+        # Zhang, Mallik & Letaief (2009) closed form; cases and k_opt recomputed from it.
         assert system.optimal_k(n, pd, pf) == k
         # Brute force over k of Qf + Qm (ties allowed: n=10, 0.9/0.1 has k = 5 and 6 equal).
         err = [stats.binom.sf(j - 1, n, pf) + 1 - stats.binom.sf(j - 1, n, pd) for j in range(1, n + 1)]
@@ -103,7 +102,7 @@ class TestLocalFalseAlarm:
             system.local_false_alarm("or", 3, 1.0)
 
     def test_against_reference(self):
-        # OR: 1 - (1 - Pf)^(1/n) (METHODS.md section 2); 3 nodes at system 0.1 -> 0.03451061539.
+        # OR: 1 - (1 - Pf)^(1/n) (binomial formula); 3 nodes at system 0.1 -> 0.03451061539.
         assert_allclose(system.local_false_alarm("or", 3, 0.1), 0.03451061539, rtol=1e-9)
         assert_allclose(system.local_false_alarm("and", 4, 0.01), 0.01 ** 0.25, **EXACT)
         # k_of_n: binom.sf(k - 1, n, p) equals the target at the returned p.
@@ -124,7 +123,7 @@ class TestChairVarshneyWeights:
             system.chair_varshney_weights([1.5], [0.1])
 
     def test_against_reference(self):
-        # Chair & Varshney (1986); weights from METHODS.md section 3.
+        # Chair & Varshney (1986); weights log(Pd/Pf), log((1-Pd)/(1-Pf)).
         w = system.chair_varshney_weights(PD5, PF5)
         assert_allclose(w.plus, [2.197224577, 2.772588722, 1.252762968, 1.791759469, 1.15267951], rtol=1e-9)
         assert_allclose(w.minus, [-2.197224577, -1.558144618, -0.980829253, -0.8109302162, -2.63905733], rtol=1e-9)
@@ -147,7 +146,7 @@ class TestChairVarshneyPerformance:
             system.chair_varshney_performance(np.full(21, 0.9), np.full(21, 0.1), 0.0)
 
     def test_against_reference(self):
-        # Chair & Varshney (1986) Bayes rule, P1 = 0.2 (METHODS.md section 3, 5 d.p. there).
+        # Chair & Varshney (1986) Bayes rule, P1 = 0.2 (by enumeration, 5 d.p.).
         res = system.chair_varshney_performance(PD5, PF5, -np.log(0.2 / 0.8))
         assert_allclose([res.qd, res.qf], [0.93304, 0.01424], atol=5e-6)
         res = system.chair_varshney_performance(PD5, PF5, 0.0)  # equal priors
@@ -158,7 +157,7 @@ class TestChairVarshneyPerformance:
         assert_allclose([res.qd, res.qf], [0.97132, 0.04437], atol=5e-6)
 
     def test_edge_cases(self):
-        # Identical nodes with a0 = 0 reduce to Zhang's optimal k (METHODS.md section 3).
+        # Identical nodes with a0 = 0 reduce to Zhang's optimal k (Zhang, Mallik & Letaief 2009).
         pd, pf = np.full(10, 0.6), np.full(10, 0.05)
         w = system.chair_varshney_weights(pd, pf)
         counts = np.arange(11)
@@ -175,7 +174,7 @@ class TestWeightedGammaSf:
         # Moschopoulos (1985): equal scales reduce to one gamma (scipy.stats.gamma).
         assert_allclose(system.weighted_gamma_sf([50, 150, 200], [50] * 3, [1.0] * 3),
                         stats.gamma.sf([50, 150, 200], 150), **EXACT)
-        # MRC weights of METHODS.md section 4.4: exact tau 56.15208379 gives Pf 0.1.
+        # MRC weights (Moschopoulos 1985 series): exact tau 56.15208379 gives Pf 0.1.
         w = np.array([0.5879885239, 0.2946923417, 0.1173191343])
         assert_allclose(system.weighted_gamma_sf(56.15208379, [50] * 3, w), 0.1, rtol=1e-8)
         # Independent check: Gil-Pelaez (1951) inversion of the characteristic function.
@@ -275,7 +274,7 @@ class TestSystemPerformance:
             performance.system_performance("xor", [10], 0.1, 0.1)
 
     def test_against_reference(self):
-        # EGC and OR, Digham-style u = 5 setups of METHODS.md section 4.4 / 4.1 (AWGN):
+        # EGC and OR, Digham-style u = 5 setups (AWGN):
         # 3 nodes, N = 50, gamma_s = -5, -8, -12 dB, Pf = 0.1: EGC Pd = 0.7763627411 (ncx2).
         g = 10 ** (np.array([-5.0, -8.0, -12.0]) / 10)
         egc = performance.system_performance("egc", [50] * 3, g, 0.1)
@@ -285,7 +284,7 @@ class TestSystemPerformance:
         assert_allclose(performance.system_performance("egc", [50] * 3, g, 0.1, signal="gaussian").qd, 0.7725216602, rtol=1e-8)
         llr = performance.system_performance("llr", [50] * 3, g, 0.1, signal="gaussian")
         # The llr threshold is Pearson's approximation, so its Pd is at a slightly different Pf:
-        # METHODS.md gives 0.1026-0.1034 for a Gaussian approximation; Pearson is within 1e-3.
+        # Pearson lands within 1e-3 of the target Pf (a plain Gaussian approximation is off by ~3e-3 here).
         assert abs(llr.qf - 0.1) < 1e-3 and abs(llr.qd - 0.8344002922) < 2e-3
 
     def test_edge_cases(self):

@@ -1,7 +1,7 @@
 """sim_nodes.evaluate: analytic curves against published closed forms and scipy, Monte Carlo against them.
 
-Monte Carlo tolerances are 4 binomial standard errors, sqrt(p(1-p)/m) at the exact p (METHODS.md section 9,
-common practice): a correct implementation fails such a check about once in 16,000 runs, and every run is
+Monte Carlo tolerances are 4 binomial standard errors, sqrt(p(1-p)/m) at the exact p (common
+practice): a correct implementation fails such a check about once in 16,000 runs, and every run is
 seeded.
 """
 
@@ -40,8 +40,8 @@ class TestEnergyDetectorAgainstPublishedClosedForms:
 
     @pytest.mark.parametrize("pf,expected", [(0.01, 0.5093999556), (0.1, 0.7017129954)])
     def test_rayleigh_pd_at_target_is_digham_closed_form(self, pf, expected):
-        # u = 5, mean total SNR 10 (10 dB): Digham et al. (2007); the literal values are the worked example
-        # of METHODS.md section 2 (closed form, series and quadrature agreeing to 1e-13).
+        # u = 5, mean total SNR 10 (10 dB): Digham et al. (2007); the literal values were recomputed
+        # with scipy (closed form, series and quadrature agreeing to 1e-13).
         rep = ev.evaluate(one_node("rayleigh"), ev.parse_rules("or", 1), trials=20_000, target_pf=pf, seed=3)
         lam = stats.chi2.isf(pf, 10)  # Digham's threshold on Y = 2T
         exact = digham_rayleigh(lam, 5, 10.0)
@@ -109,7 +109,7 @@ class TestCountingRulesAgainstTheBinomialFormula:
     @pytest.mark.parametrize("label,k", [("or", 1), ("and", 10), ("3_of_n", 3), ("majority", 6)])
     def test_pd_and_pf_at_target_are_binomial_and_monte_carlo_agrees(self, report, label, k):
         r = next(r for r in report["rules"] if r["label"] == label)
-        assert r["k"] == k  # majority states its k: strict majority floor(n/2) + 1 (METHODS.md section 3)
+        assert r["k"] == k  # majority states its k: strict majority floor(n/2) + 1 (common practice)
         exact = self.binomial_qd(k, 0.05)
         assert r["pd_at_target_pf"]["analytic"] == pytest.approx(exact, rel=1e-8, abs=1e-12)
         assert r["pf_at_target_pf"]["analytic"] == pytest.approx(0.05, rel=1e-9)
@@ -144,7 +144,7 @@ class TestCountingRulesAgainstTheBinomialFormula:
 
 def test_egc_of_rayleigh_nodes_is_the_square_law_combining_average_by_quadrature():
     """Three i.i.d. Rayleigh nodes, u = 5, mean total SNR 10 each: the combined SNR is Gamma(3, 10) (Digham et
-    al. 2007, square-law combining); Pd = E[ncx2.sf(lambda, 30, 2 S)] by quad; METHODS.md section 2 gives
+    al. 2007, square-law combining); Pd = E[ncx2.sf(lambda, 30, 2 S)] by quad, which gives
     0.9506161825 at system Pf 0.1."""
     setup = ev.homogeneous_setup(3, 10 * math.log10(2.0), 5, "rayleigh")
     rep = ev.evaluate(setup, ev.parse_rules("egc", 3), trials=20_000, target_pf=0.1, seed=12)

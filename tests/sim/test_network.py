@@ -33,7 +33,7 @@ class TestLinkBudget:
         lam = 299_792_458.0 / 599.9e6
         by_hand_dbm = 10 * np.log10(1.0 * (lam / (4 * np.pi * 1000.0)) ** 2)
         assert abs(net.mean_rx_dbm[0, 1, 0] - by_hand_dbm) < 0.1
-        # and the literal check value of METHODS.md section 8 at exactly 600 MHz: FSPL 88.01080823 dB
+        # and the literal check value at exactly 600 MHz (recomputed by hand): FSPL 88.01080823 dB
         assert abs(-by_hand_dbm - 88.01080823) < 0.01  # 100 kHz off 600 MHz moves FSPL by 0.0014 dB
 
     def test_log_distance_budget_matches_rappaport_example(self):
@@ -59,7 +59,7 @@ class TestLinkBudget:
 class TestFastLaws:
     @pytest.mark.parametrize("signal", ["gaussian", "ofdm"])
     def test_fast_statistic_follows_its_exact_law(self, signal):
-        # METHODS.md section 1: Gaussian signal T ~ Gamma(N, 1 + snr); deterministic energy 2T ~ ncx2(2N, 2N snr).
+        # Urkowitz (1967) and the Gaussian-signal law: Gaussian signal T ~ Gamma(N, 1 + snr); deterministic energy 2T ~ ncx2(2N, 2N snr).
         n = 64
         net = SimNetwork(scenario(signal=signal, n_samples=n, eirp_dbm=-30.0), 10.0, seed=3)
         snr = 10 ** ((net.mean_rx_dbm[0, 1, 0] - net.nominal_noise_dbm[0, 1]) / 10)

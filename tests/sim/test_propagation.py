@@ -1,4 +1,4 @@
-"""Propagation formulas against published check values (METHODS.md sections 7-8)."""
+"""Propagation formulas against published check values (recomputed from each formula)."""
 
 import numpy as np
 import pytest
@@ -9,7 +9,7 @@ from sim_nodes import propagation as prop
 
 class TestFreeSpacePathLoss:
     def test_against_reference(self):
-        # Friis (1946), FSPL = 20 log10(4 pi d f / c); values from METHODS.md section 8 (recomputed there).
+        # Friis (1946), FSPL = 20 log10(4 pi d f / c); values recomputed from the formula.
         assert_allclose(prop.free_space_path_loss_db([1000.0, 1.0, 100.0], [600e6, 600e6, 2437e6]),
                         [88.01080823, 28.01080823, 80.18489381], atol=1e-8)
 
@@ -43,7 +43,7 @@ class TestLogDistance:
 
 class TestThermalNoise:
     def test_against_reference(self):
-        # kT0 B + NF with exact k and T0 = 290 K; values from METHODS.md section 7.
+        # kT0 B + NF with exact k and T0 = 290 K; values recomputed from the formula.
         assert_allclose(prop.thermal_noise_dbm([6e6, 200e3, 20e6], [11.0, 11.0, 7.0]),
                         [-95.19367469, -109.9648872, -93.96488724], atol=1e-7)
 
@@ -55,7 +55,7 @@ class TestThermalNoise:
 
 class TestCorrelatedShadowing:
     def test_gudmundson_correlation_and_spread(self):
-        # Gudmundson (1991): R(dx) = exp(-dx/d_c); d_c = 503.9 m gives 0.82 at 100 m (METHODS.md section 8).
+        # Gudmundson (1991): R(dx) = exp(-dx/d_c); d_c = 503.9 m gives 0.82 at 100 m.
         # 20000 pairs: the correlation's standard error is (1 - r^2)/sqrt(n) = 0.0023, tolerance 4 of them;
         # the sample std of 20000 normals has relative se 1/sqrt(2n) = 0.005, tolerance 4 of them.
         pos = np.array([[0.0, 0.0], [100.0, 0.0], [3000.0, 0.0]])

@@ -7,20 +7,19 @@ tests call it directly with a chosen ``now``.
 from __future__ import annotations
 
 import io
-import math
 import time
 from dataclasses import dataclass
 from datetime import datetime, timedelta
 from typing import Any, Mapping
 
 import numpy as np
-from sqlalchemy import select
+from sqlalchemy import bindparam, insert, select, update
 from sqlalchemy.orm import Session
 
 from .detection import energy, rules
 from .detection.reliability import ReliabilityModel
 from .detection.tracking import MarkovTracker
-from .models import Decision, Epoch, FusionState, Node, NodeReliability, Report, unpack
+from .models import Decision, Epoch, FusionState, Node, NodeReliability, Report
 from .plan import current_plan
 from .settings import get_settings, settings_dict
 
@@ -49,39 +48,61 @@ def gather(session: Session, revision: int, n_channels: int, now: datetime, *, m
     nodes = list(session.scalars(select(Node).where(Node.disabled.is_(False)).order_by(Node.id)))
     index = {node.id: i for i, node in enumerate(nodes)}
     shape = (len(nodes), n_channels)
-    energy_sum = np.zeros(shape)  # sum of N * 10**(P/10) (linear, noise units cancel later)
-    noise_lin = np.zeros(shape)  # sum of N * 10**(noise/10) where given
-    noise_n = np.zeros(shape)
-    n_sum = np.zeros(shape)
+    power = np.full(shape, np.nan)
+    noise = np.full(shape, np.nan)
+    n_total = np.ones(shape)  # 1 where a node has no measurement (NaN power), as the rules expect
     newest = np.full(len(nodes), np.nan)
     stmt = (select(Report.node_id, Report.measured_at, Report.n_samples, Report.powers, Report.noise)
             .where(Report.plan_revision == revision, Report.measured_at >= now - timedelta(seconds=max_age_s),
                    Report.measured_at <= now + timedelta(seconds=max_skew_s))
             .order_by(Report.node_id, Report.measured_at.desc()))
-    count = 0
-    for node_id, measured_at, n, powers, noise in session.execute(stmt):
-        i = index.get(node_id)
-        if i is None:
-            continue
-        at = measured_at.timestamp()
-        if math.isnan(newest[i]):
-            newest[i] = at
-        elif newest[i] - at > window_s:
-            continue
-        count += 1
-        p = unpack(powers)
-        seen = ~np.isnan(p)
-        energy_sum[i, seen] += n * 10 ** (p[seen] / 10)
-        n_sum[i, seen] += n
-        if noise is not None:
-            q = unpack(noise)
-            given = ~np.isnan(q)
-            noise_lin[i, given] += n * 10 ** (q[given] / 10)
-            noise_n[i, given] += n
+    rows = session.execute(stmt).all()
+    row_node = np.array([index.get(r[0], -1) for r in rows], dtype=np.int64)
+    at = np.array([r[1].timestamp() for r in rows], dtype=float)
+    # Rows come newest first per node (and nodes in id order, as `nodes`): a node's first row is its newest.
+    known = row_node >= 0
+    np.fmax.at(newest, row_node[known], at[known])
+    keep = known.copy()
+    keep[known] = at[known] >= newest[row_node[known]] - window_s
+    kept = [r for r, k in zip(rows, keep) if k]
+    if kept:
+        idx = row_node[keep]
+        n = np.array([r[2] for r in kept], dtype=float)[:, None]
+        p = _unpack_rows([r[3] for r in kept], n_channels)
+        q = _unpack_rows([r[4] for r in kept], n_channels)
+        starts = np.flatnonzero(np.r_[True, idx[1:] != idx[:-1]])  # idx is sorted: one run of rows per node
+        at_node = idx[starts]
+        if len(starts) == len(idx):  # one report per node (the usual case): nothing to pool
+            power[idx], noise[idx] = p, q
+            n_total[idx] = np.where(np.isnan(p), 1.0, n)
+        else:
+            power[at_node], n_total[at_node] = _pool(p, n, starts)
+            noise[at_node], _ = _pool(q, n, starts)
+    return EpochInputs(nodes, power, noise, n_total, newest, len(kept))
+
+
+def _pool(db: np.ndarray, n: np.ndarray, starts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Sample-weighted mean power (dB) and summed samples of each run of rows beginning at `starts`.
+
+    NaN values are left out of both; a run with none gives NaN and 1 sample.
+    """
+    seen = ~np.isnan(db)
+    weight = np.where(seen, n, 0.0)
+    energy = np.add.reduceat(np.where(seen, n * 10 ** (db / 10), 0.0), starts, axis=0)
+    total = np.add.reduceat(weight, starts, axis=0)
     with np.errstate(invalid="ignore", divide="ignore"):
-        power = np.where(n_sum > 0, 10 * np.log10(energy_sum / np.where(n_sum > 0, n_sum, 1)), np.nan)
-        noise = np.where(noise_n > 0, 10 * np.log10(noise_lin / np.where(noise_n > 0, noise_n, 1)), np.nan)
-    return EpochInputs(nodes, power, noise, np.where(n_sum > 0, n_sum, 1.0), newest, count)
+        mean = np.where(total > 0, 10 * np.log10(energy / np.where(total > 0, total, 1)), np.nan)
+    return mean, np.where(total > 0, total, 1.0)
+
+
+def _unpack_rows(blobs: list[bytes | None], n_channels: int) -> np.ndarray:
+    """(len(blobs), n_channels) float64 from packed float32 rows; a None row (no noise given) is all NaN."""
+    out = np.full((len(blobs), n_channels), np.nan)
+    width = 4 * n_channels
+    full = [i for i, b in enumerate(blobs) if b is not None and len(b) == width]
+    if full:
+        out[full] = np.frombuffer(b"".join(blobs[i] for i in full), dtype="<f4").reshape(len(full), n_channels)
+    return out
 
 
 def publish_states(p_occupied: np.ndarray, n_reporting: np.ndarray, *, confidence: float,
@@ -128,39 +149,71 @@ def _pack_nodes(node_ids: list[int], arrays: dict[str, np.ndarray]) -> bytes:
     return buf.getvalue()
 
 
-def _unpack_nodes(blob: bytes | None) -> dict[int, dict[str, np.ndarray]]:
-    """node id -> that node's row of every array, from :func:`_pack_nodes` output (empty for None)."""
+def _unpack_nodes(blob: bytes | None) -> tuple[list[int], dict[str, np.ndarray] | None]:
+    """The node ids and the arrays of :func:`_pack_nodes` output; ``([], None)`` for None."""
     if not blob:
-        return {}
+        return [], None
     with np.load(io.BytesIO(blob), allow_pickle=False) as z:
         arrays = {name: z[name] for name in z.files}
-    ids = arrays.pop("node_id")
-    return {int(node_id): {name: a[i] for name, a in arrays.items()} for i, node_id in enumerate(ids)}
+    return arrays.pop("node_id").tolist(), arrays
 
 
 def _json_arrays(state: dict) -> dict:
     return {k: np.asarray(v).tolist() for k, v in state.items()}
 
 
-def _reliability(session: Session, nodes: list[Node], revision: int, n_channels: int):
-    rows = {r.node_id: r for r in session.scalars(select(NodeReliability).where(
-        NodeReliability.node_id.in_([n.id for n in nodes])))}
-    for node in nodes:
-        if node.id not in rows:
-            rows[node.id] = NodeReliability(node_id=node.id, flags=[], state={})
-            session.add(rows[node.id])
+def _reliability(session: Session, nodes: list[Node], revision: int,
+                 n_channels: int) -> tuple[ReliabilityModel, dict[int, tuple[str | None, bool]]]:
+    """The learner sized to `nodes`, and node id -> (pin, row still holds pre-0003 JSON state) for every node
+    that has a node_reliability row."""
+    rows = {node_id: (pinned, bool(state)) for node_id, pinned, state in session.execute(
+        select(NodeReliability.node_id, NodeReliability.pinned, NodeReliability.state))}
     stored = session.get(FusionState, "reliability")
     if stored is None:
-        model = ReliabilityModel().resize(len(nodes), n_channels=n_channels)
+        return ReliabilityModel().resize(len(nodes), n_channels=n_channels), rows
+    glob = stored.value
+    keep_channels = glob.get("revision") == revision and glob["model"]["n_channels"] == n_channels
+    new_channels = None if keep_channels else n_channels
+    ids = [n.id for n in nodes]
+    legacy_ids = [i for i in ids if rows.get(i, (None, False))[1]]
+    legacy = {}
+    if legacy_ids:  # databases written before migration 0003 hold the learner state as JSON per node
+        legacy = {node_id: (state or {}).get("model") for node_id, state in session.execute(
+            select(NodeReliability.node_id, NodeReliability.state).where(NodeReliability.node_id.in_(legacy_ids)))}
+    stored_ids, arrays = _unpack_nodes(stored.blob)
+    if arrays is None:
+        model = ReliabilityModel.from_state(glob["model"], nodes=[legacy.get(i) for i in ids],
+                                            n_channels=new_channels)
     else:
-        glob = stored.value
-        same_plan = glob.get("revision") == revision
-        packed = _unpack_nodes(stored.blob)
-        # Packed arrays first; per-node JSON is what databases written before migration 0003 hold.
-        model = ReliabilityModel.from_state(
-            glob["model"], nodes=[packed.get(n.id) or rows[n.id].state.get("model") for n in nodes],
-            n_channels=None if same_plan and glob["model"]["n_channels"] == n_channels else n_channels)
+        at = {node_id: k for k, node_id in enumerate(stored_ids)}
+        where = [at.get(i, -1) for i in ids]
+        model = ReliabilityModel.from_arrays(glob["model"], arrays, where, n_channels=new_channels,
+                                             nodes=[legacy.get(i) if w < 0 else None for i, w in zip(ids, where)])
     return model, rows
+
+
+def _write_reliability(session: Session, nodes: list[Node], model: ReliabilityModel,
+                       rows: dict[int, tuple[str | None, bool]], now: datetime) -> None:
+    """One node_reliability row per node (the API's view of the learner), in two executemany statements."""
+    (a_d, b_d), (a_f, b_f) = model.prior_pd, model.prior_pf
+    cols = {name: np.asarray(v, dtype=float).tolist() for name, v in {
+        "pd_a": a_d + model.kd_, "pd_b": b_d + model.nd_ - model.kd_,
+        "pf_a": a_f + model.kf_, "pf_b": b_f + model.nf_ - model.kf_, "trust": model.trust_}.items()}
+    noise = [None if np.isnan(v) else float(v) for v in model.noise_dbm_]
+    values = [{"node_id": node.id, **{name: col[i] for name, col in cols.items()}, "noise_dbm": noise[i],
+               "flags": list(model.flags_[i]), "updated_at": now} for i, node in enumerate(nodes)]
+    old = [v for v in values if v["node_id"] in rows]
+    new = [v | {"state": {}} for v in values if v["node_id"] not in rows]
+    if old:  # a Core executemany: about half the time of the ORM's bulk UPDATE by primary key
+        t = NodeReliability.__table__
+        session.execute(update(t).where(t.c.node_id == bindparam("key")).values(
+            {name: bindparam(name) for name in old[0] if name != "node_id"}),
+            [v | {"key": v["node_id"]} for v in old])
+    if new:
+        session.execute(insert(NodeReliability), new)
+    legacy = [node.id for node in nodes if rows.get(node.id, (None, False))[1]]
+    if legacy:  # the learner state now lives packed in fusion_state (see _pack_nodes)
+        session.execute(update(NodeReliability).where(NodeReliability.node_id.in_(legacy)).values(state={}))
 
 
 @dataclass
@@ -243,7 +296,7 @@ def run_epoch(session: Session, now: datetime, config: Mapping[str, Any]) -> Epo
                max_skew_s=config["MAX_SKEW_S"])
     n_nodes = len(x.nodes)
     model, rel_rows = _reliability(session, x.nodes, plan.revision, len(ids)) if n_nodes else (None, {})
-    pins = [rel_rows[n.id].pinned for n in x.nodes]
+    pins = [rel_rows.get(n.id, (None, False))[0] for n in x.nodes]
 
     tracker = MarkovTracker(len(ids))
     saved = _load_state(session, "tracker")
@@ -257,30 +310,19 @@ def run_epoch(session: Session, now: datetime, config: Mapping[str, Any]) -> Epo
 
     if n_nodes:
         learn_epoch(model, x, fused, now_s=now.timestamp(), max_age_s=fs.max_age_s)
-        for i, node in enumerate(x.nodes):
-            row = rel_rows[node.id]
-            a_d, b_d = model.prior_pd
-            a_f, b_f = model.prior_pf
-            row.pd_a, row.pd_b = float(a_d + model.kd_[i]), float(b_d + model.nd_[i] - model.kd_[i])
-            row.pf_a, row.pf_b = float(a_f + model.kf_[i]), float(b_f + model.nf_[i] - model.kf_[i])
-            row.noise_dbm = None if np.isnan(model.noise_dbm_[i]) else float(model.noise_dbm_[i])
-            row.trust = float(model.trust_[i])
-            row.flags = list(model.flags_[i])
-            if row.state:
-                row.state = {}  # the learner state now lives packed in fusion_state (see _pack_nodes)
-            row.updated_at = now
+        _write_reliability(session, x.nodes, model, rel_rows, now)
         _save_state(session, "reliability", {"revision": plan.revision, "model": model.get_state(include_nodes=False)},
-                    blob=_pack_nodes([n.id for n in x.nodes], model.node_arrays()))
+                    blob=_pack_nodes([n.id for n in x.nodes], model.node_arrays(compact=True)))
 
     epoch = Epoch(started_at=now, duration_s=0.0, plan_revision=plan.revision, rule=fs.rule, params=params,
                   n_reports=x.n_reports)
     session.add(epoch)
     session.flush()
     stat = result.statistic
-    session.add_all([
-        Decision(epoch_id=epoch.id, channel_id=cid, decided_at=now, state=str(states[j]),
-                 p_occupied=None if np.isnan(p[j]) else float(p[j]), nodes=int(result.n_reporting[j]),
-                 rule=fs.rule, statistic=None if not np.isfinite(stat[j]) else float(stat[j]))
+    session.execute(insert(Decision), [
+        {"epoch_id": epoch.id, "channel_id": cid, "decided_at": now, "state": str(states[j]),
+         "p_occupied": None if np.isnan(p[j]) else float(p[j]), "nodes": int(result.n_reporting[j]),
+         "rule": fs.rule, "statistic": None if not np.isfinite(stat[j]) else float(stat[j])}
         for j, cid in enumerate(ids)])
     epoch.duration_s = time.perf_counter() - started
     return epoch

@@ -51,6 +51,19 @@ class TestSafetyRule:
         assert all(s != "free" for s, _, _ in got.values())
         assert all(n == 1 for _, _, n in got.values())
 
+    def test_reports_of_disabled_nodes_are_no_evidence(self, app, net):
+        from fusion.models import Node
+
+        for name in ("a", "b"):
+            net.register(name)
+        feed(net, ["a", "b"], set(), rng=np.random.default_rng(4))
+        with app.extensions["occfuse.sessions"]() as session, session.begin():
+            for node in session.scalars(select(Node)):
+                node.disabled = True
+        got = states(app, epoch(app, rule="egc"))
+        assert {s for s, _, _ in got.values()} == {"unknown"}
+        assert all(n == 0 for _, _, n in got.values())
+
     def test_stale_reports_are_no_evidence(self, app, net):
         for name in ("a", "b", "c"):
             net.register(name)
@@ -141,21 +154,24 @@ def test_learned_state_survives_between_epochs_packed_and_from_the_old_json_layo
         nodes = list(s.scalars(select(Node).order_by(Node.id)))
         plan = current_plan(s)
         model, rows = _reliability(s, nodes, plan.revision, len(plan.channels))
-        assert all(r.state == {} for r in rows.values())  # nothing left in the per-node JSON
-        packed = model.node_arrays()
+        assert rows and not any(has_json for _, has_json in rows.values())  # nothing left in the per-node JSON
+        assert all(s.get(NodeReliability, n.id).state == {} for n in nodes)
+        packed = model.node_arrays(compact=True)  # as the epoch stores them
         assert np.any(packed["nd"] + packed["nf"] > 0)  # something was learned, so the comparison means something
         # The same state written the old way: per-node JSON, no blob.
         stored = s.get(FusionState, "reliability")
         legacy = model.get_state()
         for i, node in enumerate(nodes):
             s.get(NodeReliability, node.id).state = {"model": legacy["nodes"][i]}
-        rows_in_blob = _unpack_nodes(stored.blob)
-        assert set(rows_in_blob) == {n.id for n in nodes}
+        stored_ids, arrays = _unpack_nodes(stored.blob)
+        assert sorted(stored_ids) == sorted(n.id for n in nodes)
         for i, node in enumerate(nodes):  # what the epoch wrote is what the model was rebuilt from
-            for name, value in rows_in_blob[node.id].items():
-                np.testing.assert_array_equal(packed[name][i], value, err_msg=name)
+            k = stored_ids.index(node.id)
+            for name, value in arrays.items():
+                np.testing.assert_array_equal(packed[name][i], value[k], err_msg=name)
         stored.blob = None
         s.flush()
-        again, _ = _reliability(s, nodes, plan.revision, len(plan.channels))
+        again, rows = _reliability(s, nodes, plan.revision, len(plan.channels))
+        assert all(has_json for _, has_json in rows.values())
     for name, value in again.node_arrays().items():
         np.testing.assert_array_equal(value, packed[name], err_msg=name)

@@ -459,6 +459,9 @@ class ReliabilityModel:
         self.noise_pos_[rows] = (pos + 1) % int(self.noise_window)
 
     def _track_stuck(self, values, fresh):
+        # Reports carry float32 powers: identical means identical at that precision (also what a store
+        # keeping last_power at float32, node_arrays(compact=True), gives back).
+        values = np.asarray(values, dtype=np.float32).astype(float)
         finite = np.isfinite(values)
         same = (np.all(np.isfinite(self.last_power_) == finite, axis=1)
                 & np.all(np.where(finite, values == self.last_power_, True), axis=1)
@@ -571,13 +574,18 @@ class ReliabilityModel:
 
     # -- persistence ----------------------------------------------------------------------
 
-    def node_arrays(self):
+    def node_arrays(self, *, compact=False):
         """The per-node state as arrays with the node axis first, ``{name: ndarray}`` (copies).
 
         Row ``i`` of every array is what :meth:`get_state` writes for node ``i``; a store
-        may keep these packed and hand rows back to :meth:`from_state` as per-node dicts.
+        may keep these packed and hand them back to :meth:`from_arrays`.  ``compact=True``
+        gives the per-channel arrays (the bulk of the state) as float32: half the bytes, for a
+        relative rounding of 6e-8 on decayed counts and SNR sums, and none on the last powers
+        (float32 already).
         """
-        return {name: np.array(getattr(self, name + "_"), dtype=float) for name in _FIELDS}
+        return {name: np.array(getattr(self, name + "_"),
+                               dtype=np.float32 if compact and kind == "c" else float)
+                for name, (kind, _) in _FIELDS.items()}
 
     def get_state(self, *, include_nodes=True):
         """Plain JSON-able state: ``{"version", "n_channels", "now_s", "max_age_s", "nodes"}``.
@@ -622,18 +630,78 @@ class ReliabilityModel:
 
         model = cls(**params).resize(len(entries), n_channels=n_ch)
         for i, d in enumerate(entries):
-            if d is None:
+            if d is not None:
+                model._set_node(i, d, same_channels=n_ch == n_ch_state)
+                model.pinned_[i] = d.get("pinned")
+        return model._finish_restore(state)
+
+    @classmethod
+    def from_arrays(cls, state, arrays, rows, *, n_channels=None, nodes=None, **params):
+        """Rebuild a model from :meth:`get_state` (``include_nodes=False``) and :meth:`node_arrays` output.
+
+        The vectorised counterpart of :meth:`from_state` for a store that keeps the arrays packed.
+
+        Parameters
+        ----------
+        state : dict
+            As exported by ``get_state(include_nodes=False)``.
+        arrays : dict of str to ndarray
+            As exported by :meth:`node_arrays`, one row per stored node.
+        rows : array_like of int, shape (n_nodes,)
+            Row of `arrays` for each node of the new model; -1 where it has none.
+        n_channels : int, optional
+            A new channel count, as in :meth:`from_state`.
+        nodes : list of (dict or None), optional
+            Per-node :meth:`get_state` dicts for nodes with no row (-1), e.g. from an older
+            store; None starts that node neutral.
+        **params
+            Constructor parameters.
+        """
+        # Input validation
+        if not isinstance(state, dict) or state.get("version") != _STATE_VERSION:
+            got = state.get("version") if isinstance(state, dict) else type(state).__name__
+            raise ValueError(f"`state` must be a dict of version {_STATE_VERSION}, was {got!r}")
+        rows = np.asarray(rows, dtype=np.int64).reshape(-1)
+        missing = sorted(set(_FIELDS) - set(arrays))
+        if missing:
+            raise ValueError(f"`arrays` lacks {', '.join(missing)}")
+        stored = len(arrays["kd"])
+        if rows.size and (rows.min() < -1 or rows.max() >= stored):
+            raise ValueError(f"`rows` must lie in [-1, {stored}), got {rows.min()}..{rows.max()}")
+        if nodes is not None and len(nodes) != rows.size:
+            raise ValueError(f"`nodes` must have one entry per row ({rows.size}), had {len(nodes)}")
+        n_ch_state = int(state["n_channels"])
+        n_ch = n_ch_state if n_channels is None else int(n_channels)
+
+        model = cls(**params).resize(rows.size, n_channels=n_ch)
+        have = rows >= 0
+        for name, (kind, _) in _FIELDS.items():
+            if kind == "c" and n_ch != n_ch_state:
                 continue
-            for name, (kind, _) in _FIELDS.items():
-                if kind == "c" and n_ch != n_ch_state:
-                    continue
-                value = np.array(d[name], dtype=float)  # None -> NaN
-                if kind == "w" and value.shape != model.noise_history_.shape[1:]:
-                    continue  # window length changed: relearn the floor
-                getattr(model, name + "_")[i] = value
-            model.pinned_[i] = d.get("pinned")
-        model.noise_pos_ = np.mod(model.noise_pos_, int(model.noise_window))
-        model.now_s_ = np.nan if state["now_s"] is None else float(state["now_s"])
-        model.max_age_s_ = np.inf if state["max_age_s"] is None else float(state["max_age_s"])
-        model._refresh()
-        return model
+            value = np.asarray(arrays[name], dtype=float)
+            target = getattr(model, name + "_")
+            if value.shape[1:] != target.shape[1:]:
+                continue  # the noise window changed: relearn the floor
+            target[have] = value[rows[have]]
+        for i in np.flatnonzero(~have):
+            if nodes is not None and nodes[i] is not None:
+                model._set_node(i, nodes[i], same_channels=n_ch == n_ch_state)
+                model.pinned_[i] = nodes[i].get("pinned")
+        return model._finish_restore(state)
+
+    def _set_node(self, i, d, *, same_channels):
+        """Row `i` of every per-node array from one :meth:`get_state` node dict."""
+        for name, (kind, _) in _FIELDS.items():
+            if kind == "c" and not same_channels:
+                continue
+            value = np.array(d[name], dtype=float)  # None -> NaN
+            if kind == "w" and value.shape != self.noise_history_.shape[1:]:
+                continue  # window length changed: relearn the floor
+            getattr(self, name + "_")[i] = value
+
+    def _finish_restore(self, state):
+        self.noise_pos_ = np.mod(self.noise_pos_, int(self.noise_window))
+        self.now_s_ = np.nan if state["now_s"] is None else float(state["now_s"])
+        self.max_age_s_ = np.inf if state["max_age_s"] is None else float(state["max_age_s"])
+        self._refresh()
+        return self

@@ -404,6 +404,58 @@ class TestState:
         assert_allclose(restored.pd_, model.pd_, rtol=0, atol=0)
         assert_allclose(restored.noise_dbm_, model.noise_dbm_, rtol=0, atol=0)
 
+    def test_arrays_round_trip_matches_the_json_one(self):
+        # from_arrays is from_state's vectorised twin: the same model from the same learned numbers.
+        model = self._trained(np.random.default_rng(25))
+        state = model.get_state(include_nodes=False)
+        restored = ReliabilityModel.from_arrays(state, model.node_arrays(), [2, -1, 0],
+                                                nodes=[None, model.get_state()["nodes"][1], None])
+        via_json = ReliabilityModel.from_state(model.get_state(), nodes=[
+            model.get_state()["nodes"][k] for k in (2, 1, 0)])
+        for name in ("pd_", "pf_", "pd_ci_", "noise_dbm_", "snr_", "trust_"):
+            assert_allclose(getattr(restored, name), getattr(via_json, name), rtol=0, atol=0, err_msg=name)
+        assert restored.pinned_ == [None, "trusted", None]  # a JSON node brings its pin; array rows carry none
+        neutral = ReliabilityModel.from_arrays(state, model.node_arrays(), [0, -1])
+        fresh = ReliabilityModel().resize(1, n_channels=6)
+        assert neutral.pd_[1] == fresh.pd_[0] and neutral.pd_[0] == model.pd_[0]
+
+    def test_compact_arrays_keep_the_learned_estimates(self):
+        # float32 per-channel arrays: decayed counts and SNR sums round at ~6e-8 relative (float32 epsilon,
+        # IEEE 754), so the estimates built from them agree to well within 1e-6.
+        model = self._trained(np.random.default_rng(26))
+        compact = model.node_arrays(compact=True)
+        assert compact["kd_ch"].dtype == np.float32 and compact["last_seen_s"].dtype == np.float64
+        restored = ReliabilityModel.from_arrays(model.get_state(include_nodes=False), compact, [0, 1, 2])
+        assert_allclose(restored.snr_, model.snr_, rtol=1e-6)
+        assert_allclose(restored.pd_channel_, model.pd_channel_, rtol=1e-6)
+        assert_allclose(restored.pd_, model.pd_, rtol=0, atol=0)  # pooled counts stay float64
+
+    def test_stuck_node_found_across_a_compact_round_trip(self):
+        # A node repeating its last report is stuck whether or not its state went through float32 storage.
+        rng = np.random.default_rng(27)
+        model = ReliabilityModel()
+        t = rng.gamma(N, 1.0, size=(2, 6))
+        power = -100 + 10 * np.log10(t / N)
+        for epoch in range(3):
+            kw = dict(t=t, n_samples=N, report_time_s=np.full(2, float(epoch)), now_s=epoch + 0.5,
+                      max_age_s=2.0, p_occupied=np.full(6, 0.01), power_dbm=power)
+            model.update(**kw)
+            model = ReliabilityModel.from_arrays(model.get_state(include_nodes=False),
+                                                 model.node_arrays(compact=True), [0, 1])
+        assert model.stuck_run_.tolist() == [2.0, 2.0]
+
+    def test_from_arrays_refuses_bad_input(self):
+        model = self._trained(np.random.default_rng(28))
+        state, arrays = model.get_state(include_nodes=False), model.node_arrays()
+        with pytest.raises(ValueError, match="version"):
+            ReliabilityModel.from_arrays({"version": 99}, arrays, [0])
+        with pytest.raises(ValueError, match="lacks kd"):
+            ReliabilityModel.from_arrays(state, {k: v for k, v in arrays.items() if k != "kd"}, [0])
+        with pytest.raises(ValueError, match=r"\[-1, 3\)"):
+            ReliabilityModel.from_arrays(state, arrays, [0, 3])
+        with pytest.raises(ValueError, match="one entry per row"):
+            ReliabilityModel.from_arrays(state, arrays, [0, 1], nodes=[None])
+
     def test_update_grows_the_model_for_a_new_node(self):
         model = self._trained(np.random.default_rng(24), n_nodes=2)
         t = np.full((3, 6), float(N))

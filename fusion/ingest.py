@@ -13,7 +13,7 @@ import math
 from datetime import datetime, timedelta, timezone
 from typing import NamedTuple
 
-from sqlalchemy import insert, select, update
+from sqlalchemy import bindparam, insert, select, update
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
@@ -128,6 +128,13 @@ def _prepare(node, reports: list[ReportIn], plan: PlanIndex, *, prefix: str, now
     return rows
 
 
+# Built once (constructing a statement costs more than running it on this per-request path).
+_INSERT_NEW = {name: module.insert(Report.__table__).on_conflict_do_nothing(index_elements=["node_id", "seq"])
+               .returning(Report.__table__.c.seq) for name, module in (("sqlite", sqlite), ("postgresql", postgresql))}
+_SEEN = (update(Node.__table__).where(Node.__table__.c.id == bindparam("node"))
+         .values(last_seen=bindparam("now")))
+
+
 def _store(session: Session, node, rows: dict[int, tuple[str, dict]], now: datetime) -> list[tuple[int, str]]:
     """Store the new rows, acknowledge the identical ones, refuse a seq stored with other content.
 
@@ -140,10 +147,7 @@ def _store(session: Session, node, rows: dict[int, tuple[str, dict]], now: datet
     conn = session.connection()  # Core from here on: these statements run on every report request
     dialect = conn.dialect.name
     if dialect in ("sqlite", "postgresql"):
-        module = sqlite if dialect == "sqlite" else postgresql
-        stmt = (module.insert(table).on_conflict_do_nothing(index_elements=["node_id", "seq"])
-                .returning(table.c.seq))
-        created = set(conn.execute(stmt, [row for _, row in rows.values()]).scalars())
+        created = set(conn.execute(_INSERT_NEW[dialect], [row for _, row in rows.values()]).scalars())
     else:  # any other backend: check, then insert (a concurrent twin may then fail with IntegrityError)
         have = set(conn.execute(select(table.c.seq).where(table.c.node_id == node.id,
                                                           table.c.seq.in_(list(rows)))).scalars())
@@ -160,5 +164,5 @@ def _store(session: Session, node, rows: dict[int, tuple[str, dict]], now: datet
             raise Conflict(f"seq {clashes[0]} was already stored with other content; a retry must re-send "
                            f"exactly the same report, a new report needs a new seq",
                            errors=[{"path": "seq", "message": f"seq {s} conflicts"} for s in clashes])
-    conn.execute(update(Node.__table__).where(Node.__table__.c.id == node.id).values(last_seen=now))
+    conn.execute(_SEEN, {"node": node.id, "now": now})
     return [(seq, "created" if seq in created else "duplicate") for seq in rows]

@@ -86,10 +86,13 @@ def _url(session: Session) -> str:
     return session.get_bind().url.render_as_string(hide_password=False)
 
 
+# Built once: constructing a statement costs more than running it on this per-request path.
+_NEWEST = select(PlanRevision.revision, PlanRevision.created_at).order_by(PlanRevision.revision.desc()).limit(1)
+
+
 def newest_revision(session: Session) -> tuple[int, datetime] | None:
     """(revision, created_at) of the newest plan, or None; one indexed one-row query."""
-    row = session.execute(select(PlanRevision.revision, PlanRevision.created_at)
-                          .order_by(PlanRevision.revision.desc()).limit(1)).first()
+    row = session.execute(_NEWEST).first()
     return None if row is None else (row.revision, row.created_at)
 
 

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from flask import current_app, g, request
 
-from sqlalchemy import select
+from sqlalchemy import bindparam, select
 
 from ..errors import Forbidden, Unauthorized
 from ..models import Node
@@ -37,13 +37,15 @@ def bearer_token() -> str | None:
     return token.strip()
 
 
+_BY_TOKEN = (select(Node.__table__.c.id, Node.__table__.c.name, Node.__table__.c.disabled)
+             .where(Node.__table__.c.token_hash == bindparam("token_hash")))  # built once: it runs per request
+
+
 def _node_for(token: str):
     """(id, name, disabled) of the node whose token this is, or None. A short Core read (it runs on every
     node request), never the write lock."""
-    node = Node.__table__.c
     with current_app.extensions["occfuse.read_engine"].connect() as conn:
-        row = conn.execute(select(node.id, node.name, node.disabled)
-                           .where(node.token_hash == hash_token(token))).first()
+        row = conn.execute(_BY_TOKEN, {"token_hash": hash_token(token)}).first()
     return None if row is None else tuple(row)
 
 

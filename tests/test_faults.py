@@ -241,6 +241,51 @@ def test_a_long_lock_gives_503_with_retry_after_and_stores_nothing(sqlite_app, c
     assert _count_reports(path) == 1
 
 
+def test_begin_immediate_polls_for_the_lock_and_keeps_the_busy_timeout_for_other_statements(tmp_path):
+    # fusion.db retries BEGIN IMMEDIATE itself (short pauses instead of SQLite's 1 ms-and-up busy sleeps), with
+    # the busy handler off for that one statement only: afterwards PRAGMA busy_timeout must read as configured.
+    from sqlalchemy import text
+    from sqlalchemy.exc import OperationalError
+
+    from fusion.db import make_engine
+
+    path = tmp_path / "lock.db"
+    engine = make_engine(f"sqlite:///{path}", busy_timeout_s=0.3)
+    with engine.begin() as conn:
+        conn.execute(text("CREATE TABLE t (x INTEGER)"))
+    try:
+        with _Writer(path) as writer:
+            t0 = time.monotonic()
+            with pytest.raises(OperationalError, match="locked"):  # held past the timeout: gives up
+                with engine.begin() as conn:
+                    conn.execute(text("INSERT INTO t VALUES (1)"))
+            assert time.monotonic() - t0 >= 0.3  # it did wait the timeout first (a lower bound only)
+            got = []
+            # The failed try left the handler on for its pooled connection (a read, so it does not wait).
+            with engine.execution_options(sqlite_begin="DEFERRED").connect() as conn:
+                assert conn.exec_driver_sql("PRAGMA busy_timeout").scalar() == 300
+            engine2 = make_engine(f"sqlite:///{path}", busy_timeout_s=20)
+            thread = threading.Thread(target=lambda: got.append(_insert_and_timeout(engine2)))
+            thread.start()
+            thread.join(timeout=0.5)
+            assert thread.is_alive() and not got  # waiting for the lock (bounded by its 20 s timeout)
+            writer.release()
+            thread.join(timeout=30)
+        assert got == [20_000]  # it got the lock once released, and its busy timeout is as configured
+        with sqlite3.connect(path) as conn:
+            assert conn.execute("SELECT count(*) FROM t").fetchone()[0] == 1
+    finally:
+        engine.dispose()
+
+
+def _insert_and_timeout(engine) -> int:
+    from sqlalchemy import text
+
+    with engine.begin() as conn:
+        conn.execute(text("INSERT INTO t VALUES (2)"))
+        return conn.exec_driver_sql("PRAGMA busy_timeout").scalar()
+
+
 def test_an_epoch_during_a_long_lock_fails_alone_and_the_next_one_runs(sqlite_app):
     path, make_app = sqlite_app
     app = make_app(SQLITE_BUSY_TIMEOUT_S=0.3)

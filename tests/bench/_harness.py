@@ -78,7 +78,9 @@ class Server:
                "OCCFUSE_CONFIG": "", "OCCFUSE_LOG_LEVEL": "WARNING", "OCCFUSE_INTERVAL_S": "5"}
         if _serve_has_workers():
             cmd = [sys.executable, "-m", "fusion.cli", "serve", "--host", "127.0.0.1", "--port", str(port),
-                   "--workers", str(workers), *(["--threads", os.environ["BENCH_THREADS"]] if "BENCH_THREADS" in os.environ else [])]
+                   "--workers", str(workers)]
+            if "BENCH_THREADS" in os.environ:
+                cmd += ["--threads", os.environ["BENCH_THREADS"]]
             self.how = f"occfuse serve --workers {workers}"
         else:
             gunicorn = shutil.which("gunicorn", path=str(Path(sys.executable).parent)) or "gunicorn"

@@ -18,6 +18,11 @@ __all__ = ["GunicornServer", "options"]
 
 log = logging.getLogger("fusion.workers")
 _SCHEDULER = {}  # per worker process: its FusionScheduler
+# A keep-alive connection is closed after this many requests (the client reconnects at once). A gthread worker
+# keeps every connection it accepted, so without a cap the kernel's first hand-out decides the load for good:
+# measured, 3 busy connections all on one worker and the other idle, half the throughput. A reconnect is taken
+# by whichever worker is free. Common practice (web servers cap requests per keep-alive connection at 100-1,000).
+KEEPALIVE_REQUESTS = 100
 
 
 def options(host: str, port: int, workers: int, threads: int) -> dict:
@@ -26,7 +31,13 @@ def options(host: str, port: int, workers: int, threads: int) -> dict:
     return {"bind": f"[{host}]:{port}" if ":" in host else f"{host}:{port}", "workers": workers,
             "worker_class": "gthread", "threads": threads, "timeout": 60, "graceful_timeout": 20,
             "keepalive": 5, "preload_app": False, "control_socket_disable": True, "post_worker_init": _post_worker_init,
-            "worker_exit": _worker_exit, "child_exit": _child_exit, "when_ready": _when_ready}
+            "worker_exit": _worker_exit, "child_exit": _child_exit, "when_ready": _when_ready,
+            "pre_request": _pre_request}
+
+
+def _pre_request(worker, req) -> None:
+    if req.req_number >= KEEPALIVE_REQUESTS:  # answered with "Connection: close" (see KEEPALIVE_REQUESTS)
+        req.must_close = True
 
 
 def _when_ready(server) -> None:

@@ -16,6 +16,7 @@ import subprocess
 import sys
 import threading
 import time
+from http.client import HTTPConnection
 
 import httpx
 import pytest
@@ -137,6 +138,22 @@ def test_two_workers_one_leader_and_takeover_after_sigkill(db_url, tmp_path):
             text = httpx.get(f"{url}/metrics", timeout=20).text
             assert _metric(text, "occfuse_reports_accepted_total", {"outcome": "created"}) == 6
             assert _metric(text, "occfuse_reports_rejected_total", {"reason": "unauthenticated"}) == 1
+
+        # One keep-alive connection is closed by the server after KEEPALIVE_REQUESTS requests, so clients
+        # reconnect and the kernel can hand the new connection to the idler worker.
+        from fusion.workers import KEEPALIVE_REQUESTS
+
+        host, port = url.removeprefix("http://").rsplit(":", 1)
+        conn = HTTPConnection(host, int(port), timeout=20)
+        answers = []
+        for _ in range(KEEPALIVE_REQUESTS):
+            conn.request("GET", "/healthz")
+            r = conn.getresponse()
+            r.read()
+            answers.append((r.status, r.getheader("Connection", "").lower()))
+        conn.close()
+        assert answers[:-1] == [(200, "keep-alive")] * (KEEPALIVE_REQUESTS - 1)
+        assert answers[-1] == (200, "close")
 
         # Three epochs from the leader, and none from anyone else before the kill.
         i, _ = out.wait_for(lambda l: (e := _epoch_pid(l)) and e[1] == first, 60)

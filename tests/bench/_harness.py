@@ -106,15 +106,19 @@ class Server:
 
     def cpu_seconds(self) -> float:
         """CPU time (user + system) used so far by the server's processes (master and workers), from /proc."""
-        total = 0
+        return sum(self.cpu_by_process().values())
+
+    def cpu_by_process(self) -> dict[int, float]:
+        """pid -> CPU seconds (user + system) so far, for each of the server's processes, from /proc."""
+        out = {}
         for stat in Path("/proc").glob("[0-9]*/stat"):
             try:
                 fields = stat.read_text().rsplit(")", 1)[1].split()
             except OSError:
                 continue
             if int(fields[2]) == self.proc.pid:  # process group = the server's session leader
-                total += int(fields[11]) + int(fields[12])  # utime, stime (proc(5))
-        return total / os.sysconf("SC_CLK_TCK")
+                out[int(stat.parent.name)] = (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+        return out  # utime, stime: proc(5)
 
     def stop(self) -> None:
         if self.proc.poll() is None:
@@ -134,36 +138,40 @@ class Server:
 
 
 def post_loop(args) -> tuple[int, int, float, dict]:
-    """One client process: POST pre-encoded bodies over one keep-alive connection until `seconds` pass or
-    the bodies run out. Returns (requests ok, reports ok, elapsed s, {status: count} of the others).
+    """One client process: POST pre-encoded bodies until `seconds` pass or the bodies run out, over one
+    keep-alive connection per token in turn (each token a node, as a site's nodes each hold their own
+    connection). Returns (requests ok, reports ok, elapsed s, {status: count} of the others).
 
     Requests are written as ready-made bytes on a plain socket and responses read by Content-Length (a
     minimal HTTP/1.1 client): http.client costs ~0.5 ms of CPU per request, which on two shared cores is
     taken from the server being measured.
     """
-    base, token, bodies, per_body, seconds = args
+    base, tokens, bodies, per_body, seconds = args
+    tokens = [tokens] if isinstance(tokens, str) else list(tokens)
     host, port = base.rsplit(":", 1)
-    head = (f"POST /api/v1/reports HTTP/1.1\r\nHost: {base}\r\nAuthorization: Bearer {token}\r\n"
-            f"Content-Type: application/json\r\n").encode()
-    conn = _Conn(host, int(port))
+    heads = [(f"POST /api/v1/reports HTTP/1.1\r\nHost: {base}\r\nAuthorization: Bearer {token}\r\n"
+              f"Content-Type: application/json\r\n").encode() for token in tokens]
+    conns = [_Conn(host, int(port)) for _ in tokens]
     ok = reports = 0
     other: dict[int, int] = {}
     start = time.perf_counter()
-    for body in bodies:
+    for b, body in enumerate(bodies):
         if time.perf_counter() - start > seconds:
             break
-        conn.sock.sendall(head + b"Content-Length: %d\r\n\r\n" % len(body) + body)
-        status, close = conn.read_response()
+        k = b % len(conns)  # body b goes to connection (and node) b mod n: one request in flight at a time
+        conns[k].sock.sendall(heads[k] + b"Content-Length: %d\r\n\r\n" % len(body) + body)
+        status, close = conns[k].read_response()
         if status in (200, 201):
             ok += 1
             reports += per_body
         else:
             other[status] = other.get(status, 0) + 1
         if close:
-            conn.sock.close()
-            conn = _Conn(host, int(port))
+            conns[k].sock.close()
+            conns[k] = _Conn(host, int(port))
     elapsed = time.perf_counter() - start
-    conn.sock.close()
+    for conn in conns:
+        conn.sock.close()
     return ok, reports, elapsed, other
 
 

@@ -5,7 +5,7 @@ Prints reports/s and measurements/s for single and batched 64-channel reports, t
 same rows (one row per report: the packed layout the service stores), and the ratios; then how the figures
 grow with channels and nodes. Targets (issue): >= 1,000 single 64-channel reports/s; batched >= 0.5 x raw.
 
-    python tests/bench/bench_ingest.py [--seconds 4] [--clients 3] [--quick]
+    python tests/bench/bench_ingest.py [--seconds 4] [--clients 3] [--conns 4] [--quick]
 """
 
 from __future__ import annotations
@@ -28,24 +28,28 @@ from _harness import Server, encode, post_loop, report_body, seed  # noqa: E402
 BATCH = 100
 
 
-def http_rate(server, tokens, ids, *, batch: int, seconds: float, clients: int, rng, seq0: int = 0) -> dict:
-    """Each client posts as its own node, bodies prepared beforehand (bounded: at most 40,000 reports)."""
+def http_rate(server, tokens, ids, *, batch: int, seconds: float, clients: int, conns: int, rng,
+              seq0: int = 0) -> dict:
+    """Each client process keeps `conns` keep-alive connections, each posting as its own node, bodies prepared
+    beforehand (bounded: at most 40,000 reports)."""
     n_bodies = max(1, min(40_000 // batch // clients, 4_000))
     jobs = []
     now = datetime.now(timezone.utc)
     template = [report_body(0, ids, rng, at=now) for _ in range(8)]  # measurement values from the exact law
     for c in range(clients):
         bodies = []
-        for b in range(n_bodies):
+        for b in range(n_bodies):  # body b goes to this client's node b mod conns, so seqs are unique per node
             reps = [{**template[(b + k) % 8], "seq": seq0 + b * batch + k + 1} for k in range(batch)]
             bodies.append(encode(reps[0] if batch == 1 else {"reports": reps}))
-        jobs.append((server.base, tokens[c], bodies, batch, seconds))
-    cpu0 = server.cpu_seconds()
+        jobs.append((server.base, tokens[c * conns:(c + 1) * conns], bodies, batch, seconds))
+    cpu0 = server.cpu_by_process()
     start = time.perf_counter()
     with ProcessPoolExecutor(clients) as pool:
         results = list(pool.map(post_loop, jobs))
     wall = time.perf_counter() - start
-    cpu = server.cpu_seconds() - cpu0
+    cpu1 = server.cpu_by_process()
+    used = sorted((cpu1[pid] - cpu0.get(pid, 0.0) for pid in cpu1), reverse=True)
+    cpu = sum(used)
     reports = sum(r[1] for r in results)
     busy = max(r[2] for r in results)
     others = {}
@@ -53,7 +57,8 @@ def http_rate(server, tokens, ids, *, batch: int, seconds: float, clients: int, 
         for k, v in r[3].items():
             others[k] = others.get(k, 0) + v
     return {"reports_s": reports / busy, "requests": sum(r[0] for r in results), "others": others, "wall": wall,
-            "cpu_ms_per_report": 1e3 * cpu / max(reports, 1)}
+            "cpu_ms_per_report": 1e3 * cpu / max(reports, 1),
+            "split": [round(100 * u / cpu) if cpu else 0 for u in used[:2]]}  # the two busiest processes, %
 
 
 def raw_rate(path: Path, ids, *, batch: int, n_rows: int, rng) -> float:
@@ -103,14 +108,14 @@ def raw_measurement_rate(path: Path, ids, *, batch: int, n_reports: int, rng) ->
     return len(rows) / elapsed
 
 
-def run(n_nodes, n_channels, *, seconds, clients, rng, port) -> dict:
+def run(n_nodes, n_channels, *, seconds, clients, conns, rng, port) -> dict:
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "bench.db"
-        url, tokens, ids = seed(path, n_nodes=max(n_nodes, clients), n_channels=n_channels)
+        url, tokens, ids = seed(path, n_nodes=max(n_nodes, clients * conns), n_channels=n_channels)
         with Server(url, port=port) as server:
-            single = http_rate(server, tokens, ids, batch=1, seconds=seconds, clients=clients, rng=rng)
-            batched = http_rate(server, tokens, ids, batch=BATCH, seconds=seconds, clients=clients, rng=rng,
-                                seq0=10**6)
+            load = dict(seconds=seconds, clients=clients, conns=conns, rng=rng)
+            single = http_rate(server, tokens, ids, batch=1, **load)
+            batched = http_rate(server, tokens, ids, batch=BATCH, seq0=10**6, **load)
             how = server.how
         raw1 = raw_rate(path, ids, batch=1, n_rows=5_000, rng=rng)
         raw_b = raw_rate(path, ids, batch=BATCH, n_rows=50_000, rng=rng)
@@ -125,20 +130,25 @@ def line(label, r):
             f"rows/s  ratio {s / r['raw1']:5.2f} || batched({BATCH}) {b:8.0f} reports/s {b * r['ch']:10.0f} "
             f"meas/s | raw {BATCH}/txn {r['raw_b']:8.0f} rows/s  ratio {b / r['raw_b']:5.2f} || server CPU per "
             f"report: single {r['single']['cpu_ms_per_report']:.2f} ms, batched "
-            f"{r['batched']['cpu_ms_per_report']:.3f} ms")
+            f"{r['batched']['cpu_ms_per_report']:.3f} ms || CPU split of the two busiest server processes: "
+            f"single {r['single']['split']} %, batched {r['batched']['split']} %")
 
 
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--seconds", type=float, default=4.0)
     ap.add_argument("--clients", type=int, default=3)
+    ap.add_argument("--conns", type=int, default=4, help="keep-alive connections (nodes) per client process")
     ap.add_argument("--quick", action="store_true", help="only the 64-channel run")
     args = ap.parse_args()
     rng = np.random.default_rng(8)
-    main_run = run(8, 64, seconds=args.seconds, clients=args.clients, rng=rng, port=18_471)
+    load = dict(seconds=args.seconds, clients=args.clients, conns=args.conns, rng=rng)
+    n_nodes = args.clients * args.conns
+    main_run = run(n_nodes, 64, port=18_471, **load)
     print(f"server: {main_run['how']}, SQLite WAL, synchronous=NORMAL; {args.clients} client processes on the "
-          f"same 2 cores, keep-alive, bodies encoded beforehand")
-    print(line("8 nodes x 64 channels", main_run))
+          f"same 2 cores, {args.conns} keep-alive connections each (one node per connection, one request in "
+          f"flight per process), bodies encoded beforehand")
+    print(line(f"{n_nodes} nodes x 64 channels", main_run))
     print(f"  context: raw one-row-per-measurement executemany {main_run['raw_m']:.0f} meas/s; batched HTTP "
           f"ingest stores {main_run['batched']['reports_s'] * 64 / main_run['raw_m']:.2f} x that many measurements/s")
     for key in ("single", "batched"):
@@ -150,14 +160,12 @@ def main() -> int:
           f"({b / main_run['raw_b']:.2f})")
     if args.quick:
         return 0
-    print("growth with channels (8 nodes):")
+    print(f"growth with channels ({n_nodes} nodes):")
     for k, ch in enumerate((16, 256)):
-        print(line(f"8 nodes x {ch} channels", run(8, ch, seconds=args.seconds, clients=args.clients, rng=rng,
-                                                   port=18_480 + k)))
-    print("growth with nodes (64 channels):")
+        print(line(f"{n_nodes} nodes x {ch} channels", run(n_nodes, ch, port=18_480 + k, **load)))
+    print("growth with registered nodes (64 channels; the same clients post):")
     for k, n in enumerate((100, 1000)):
-        print(line(f"{n} nodes x 64 channels", run(n, 64, seconds=args.seconds, clients=args.clients, rng=rng,
-                                                   port=18_490 + k)))
+        print(line(f"{n} nodes x 64 channels", run(n, 64, port=18_490 + k, **load)))
     return 0
 
 

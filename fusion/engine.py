@@ -166,8 +166,10 @@ def _reliability(session: Session, nodes: list[Node], revision: int,
                  n_channels: int) -> tuple[ReliabilityModel, dict[int, tuple[str | None, bool]]]:
     """The learner sized to `nodes`, and node id -> (pin, row still holds pre-0003 JSON state) for every node
     that has a node_reliability row."""
-    rows = {node_id: (pinned, bool(state)) for node_id, pinned, state in session.execute(
-        select(NodeReliability.node_id, NodeReliability.pinned, NodeReliability.state))}
+    found = session.execute(select(NodeReliability.node_id, NodeReliability.pinned, NodeReliability.state)).all()
+    rows = {node_id: (pinned, bool(state)) for node_id, pinned, state in found}
+    # Databases written before migration 0003 hold the learner state as JSON per node.
+    legacy = {node_id: state.get("model") for node_id, _, state in found if state}
     stored = session.get(FusionState, "reliability")
     if stored is None:
         return ReliabilityModel().resize(len(nodes), n_channels=n_channels), rows
@@ -175,11 +177,6 @@ def _reliability(session: Session, nodes: list[Node], revision: int,
     keep_channels = glob.get("revision") == revision and glob["model"]["n_channels"] == n_channels
     new_channels = None if keep_channels else n_channels
     ids = [n.id for n in nodes]
-    legacy_ids = [i for i in ids if rows.get(i, (None, False))[1]]
-    legacy = {}
-    if legacy_ids:  # databases written before migration 0003 hold the learner state as JSON per node
-        legacy = {node_id: (state or {}).get("model") for node_id, state in session.execute(
-            select(NodeReliability.node_id, NodeReliability.state).where(NodeReliability.node_id.in_(legacy_ids)))}
     stored_ids, arrays = _unpack_nodes(stored.blob)
     if arrays is None:
         model = ReliabilityModel.from_state(glob["model"], nodes=[legacy.get(i) for i in ids],

@@ -51,6 +51,12 @@ _FIELDS = {
 }
 
 
+def _check_state(state):
+    if not isinstance(state, dict) or state.get("version") != _STATE_VERSION:
+        got = state.get("version") if isinstance(state, dict) else type(state).__name__
+        raise ValueError(f"`state` must be a dict of version {_STATE_VERSION}, was {got!r}")
+
+
 def _nanmedian_rows(x):
     """Median of each row ignoring NaN, NaN for an empty row (np.nanmedian warns there)."""
     x = np.sort(x, axis=1)  # NaN sorts last
@@ -621,9 +627,7 @@ class ReliabilityModel:
             Constructor parameters.
         """
         # Input validation
-        if not isinstance(state, dict) or state.get("version") != _STATE_VERSION:
-            got = state.get("version") if isinstance(state, dict) else type(state).__name__
-            raise ValueError(f"`state` must be a dict of version {_STATE_VERSION}, was {got!r}")
+        _check_state(state)
         entries = list(state["nodes"] if nodes is None else nodes)
         n_ch_state = int(state["n_channels"])
         n_ch = n_ch_state if n_channels is None else int(n_channels)
@@ -658,9 +662,7 @@ class ReliabilityModel:
             Constructor parameters.
         """
         # Input validation
-        if not isinstance(state, dict) or state.get("version") != _STATE_VERSION:
-            got = state.get("version") if isinstance(state, dict) else type(state).__name__
-            raise ValueError(f"`state` must be a dict of version {_STATE_VERSION}, was {got!r}")
+        _check_state(state)
         rows = np.asarray(rows, dtype=np.int64).reshape(-1)
         missing = sorted(set(_FIELDS) - set(arrays))
         if missing:

@@ -104,10 +104,6 @@ class Server:
         self.stop()
         raise RuntimeError(f"server did not start: {self.proc.stderr.read().decode()[-2000:]}")
 
-    def cpu_seconds(self) -> float:
-        """CPU time (user + system) used so far by the server's processes (master and workers), from /proc."""
-        return sum(self.cpu_by_process().values())
-
     def cpu_by_process(self) -> dict[int, float]:
         """pid -> CPU seconds (user + system) so far, for each of the server's processes, from /proc."""
         out = {}

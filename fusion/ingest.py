@@ -3,38 +3,31 @@
 A request's reports are all-or-nothing: if any report is invalid or conflicts with a stored one, nothing of
 the request is stored and the error lists every offending field path. A report whose (node, seq) is already
 stored with the same content is acknowledged again as a duplicate (safe retries).
+
+A report comes in one of two forms (fusion/api/schemas.py): `measurements`, one object per channel, or
+`powers_dbm`, one value per channel in the order of a `channels` list (given in the report, or once for a
+whole batch). Both are packed into the same row: float32 per plan position, NaN where not measured. The
+compact form is validated and packed for a whole batch at once with numpy, which is what makes batched ingest
+cheap; the object form walks its measurements one by one.
+
+Storing goes through :mod:`fusion.store` (plain DBAPI statements on SQLite and PostgreSQL).
 """
 
 from __future__ import annotations
 
 import hashlib
-import json
 import math
 from datetime import datetime, timedelta, timezone
 from typing import NamedTuple
 
-from sqlalchemy import bindparam, insert, select, update
-from sqlalchemy.dialects import postgresql, sqlite
-from sqlalchemy.orm import Session
+import numpy as np
 
 from .api.schemas import ReportIn
 from .errors import Conflict, Forbidden, Unprocessable
-from .models import Node, Report, pack
-from .plan import PlanIndex, newest_revision, plan_index
+from .models import Node, pack
+from .plan import PlanIndex
 
-__all__ = ["content_hash", "ingest_reports", "NodeRef"]
-
-
-def content_hash(report: ReportIn) -> str:
-    """Hash of what a report says (measurement order and the optional `node` field do not matter)."""
-    canonical = {
-        "seq": report.seq,
-        "measured_at": report.measured_at.astimezone(timezone.utc).isoformat(),
-        "n_samples": report.n_samples,
-        "noise_dbm": report.noise_dbm,
-        "measurements": sorted((m.channel, m.power_dbm, m.noise_dbm) for m in report.measurements),
-    }
-    return hashlib.sha256(json.dumps(canonical, separators=(",", ":")).encode()).hexdigest()
+__all__ = ["fingerprint", "prepare_reports", "NodeRef", "same_content"]
 
 
 class NodeRef(NamedTuple):
@@ -44,42 +37,54 @@ class NodeRef(NamedTuple):
     name: str
 
 
-def ingest_reports(session: Session, node: NodeRef | Node, reports: list[ReportIn], *, prefix: str, now: datetime,
-                   max_skew_s: float, max_measurements: int, plan: PlanIndex | None = None) -> list[tuple[int, str]]:
-    """Validate and store `reports` from `node`; return ``[(seq, "created" | "duplicate"), ...]``.
+def fingerprint(seq: int, measured_at: datetime, n_samples: int, powers: bytes, noise: bytes | None) -> str:
+    """sha256 of what is stored for a report: seq, measurement time (UTC), n_samples and the packed arrays.
 
-    `prefix` is the field path of the first report (``""`` for a single report, ``"reports"`` for a batch),
-    used to say where each error is. `plan` is a guess at the newest plan (:func:`fusion.plan.last_seen_plan`):
-    the reports are validated against it *before* the transaction starts, then the guess is confirmed with
-    one query inside it (and the reports re-validated in the rare case a new plan arrived meanwhile), so the
-    write lock is held only for the statements that store. Without a guess the plan is read first. The
-    caller commits.
+    Kept in ``report.content_hash``. It says what was *stored*: values equal after rounding to float32 (the
+    stored precision) give the same fingerprint, whichever form the report came in. Rows written before the
+    stored-content fingerprint (an earlier hash of the JSON) are compared column by column instead
+    (:func:`same_content`), so a retry is recognised either way.
     """
-    check = dict(prefix=prefix, now=now, max_skew_s=max_skew_s, max_measurements=max_measurements)
-    if plan is not None:
-        try:
-            rows = _prepare(node, reports, plan, **check)
-        except Unprocessable:
-            rows = None  # maybe only because the guess is outdated (a channel the new plan added)
-        if newest_revision(session) == (plan.revision, plan.created_at):  # opens the write transaction
-            if rows is None:
-                rows = _prepare(node, reports, plan, **check)  # the guess was right: raise its errors
-            return _store(session, node, rows, now)
-    plan = plan_index(session)
-    if plan is None:
-        raise Conflict("no band plan is loaded yet; an admin must PUT /api/v1/plan before nodes can report")
-    rows = _prepare(node, reports, plan, **check)
-    return _store(session, node, rows, now)
+    h = hashlib.sha256(b"%d|%s|%d|" % (seq, measured_at.astimezone(timezone.utc).isoformat().encode(), n_samples))
+    h.update(powers)
+    h.update(b"|" + noise if noise is not None else b"|-")
+    return h.hexdigest()
 
 
-def _prepare(node, reports: list[ReportIn], plan: PlanIndex, *, prefix: str, now: datetime, max_skew_s: float,
-             max_measurements: int) -> dict[int, tuple[str, dict]]:
-    """Check `reports` against `plan`; return ``{seq: (content hash, row)}`` or raise with every error."""
-    positions = plan.positions
-    n_channels = len(positions)
+def same_content(stored: dict, row: dict, stored_ids: tuple[str, ...] | None, ids: tuple[str, ...]) -> bool:
+    """Whether a stored report row says what a newly prepared `row` says (same seq assumed).
+
+    `stored_ids` and `ids` are the channel ids of the plan positions each row was packed against; when the
+    plan changed between the two, the values are compared channel by channel, not position by position.
+    """
+    if stored["measured_at"] != row["measured_at"] or stored["n_samples"] != row["n_samples"]:
+        return False
+    if stored["plan_revision"] == row["plan_revision"]:
+        return stored["powers"] == row["powers"] and stored["noise"] == row["noise"]
+    if stored_ids is None:
+        return False  # the stored row's plan is gone (cannot happen while reports reference it)
+
+    def by_channel(r, channel_ids):
+        p = np.frombuffer(r["powers"], "<f4")
+        q = np.frombuffer(r["noise"], "<f4") if r["noise"] is not None else np.full(len(p), np.nan, "<f4")
+        return {c: (p[k].tobytes(), q[k].tobytes()) for k, c in enumerate(channel_ids) if not np.isnan(p[k])}
+
+    return by_channel(stored, stored_ids) == by_channel(row, ids)
+
+
+def prepare_reports(node, reports: list[ReportIn], plan: PlanIndex, *, channels: list[str] | None = None,
+                    prefix: str, now: datetime, max_skew_s: float, max_measurements: int) -> dict[int, dict]:
+    """Check `reports` against `plan`; return ``{seq: row}`` (the columns of a ``report`` row, in request
+    order, one per distinct seq) or raise with every error.
+
+    `channels` is a batch's shared channel list for reports in the compact form without their own. `prefix`
+    is the field path of the first report (``""`` for a single report, ``"reports"`` for a batch), used to say
+    where each error is.
+    """
     errors: list[dict] = []
-    rows: dict[int, tuple[str, dict]] = {}
     latest_allowed = now + timedelta(seconds=max_skew_s)
+    packed: list[tuple[bytes, bytes | None] | None] = [None] * len(reports)
+    groups: dict[tuple[str, ...], list[int]] = {}  # compact reports by the channel list they follow
 
     for i, rep in enumerate(reports):
         at = f"{prefix}[{i}]." if prefix else ""
@@ -89,80 +94,105 @@ def _prepare(node, reports: list[ReportIn], plan: PlanIndex, *, prefix: str, now
         if rep.measured_at > latest_allowed:
             errors.append({"path": f"{at}measured_at", "message": f"{rep.measured_at.isoformat()} is more than "
                            f"{max_skew_s:g} s in the future (server time {now.isoformat()}); check the node's clock"})
-        if len(rep.measurements) > max_measurements:
-            errors.append({"path": f"{at}measurements", "message": f"at most {max_measurements} measurements "
-                           f"per report, got {len(rep.measurements)}"})
-        # Plain lists, not numpy scalars, in this per-measurement loop (it runs 64 to 4096 times per report).
-        powers = [math.nan] * n_channels
-        noise = [math.nan] * n_channels
-        any_noise = False
-        for j, m in enumerate(rep.measurements):
-            pos = positions.get(m.channel)
-            if pos is None:
-                known = ", ".join(list(positions)[:20]) + (", ..." if n_channels > 20 else "")
-                errors.append({"path": f"{at}measurements[{j}].channel", "message": f"unknown channel "
-                               f"{m.channel!r}; plan revision {plan.revision} has: {known}"})
-                continue
-            if not math.isnan(powers[pos]):
-                errors.append({"path": f"{at}measurements[{j}].channel",
-                               "message": f"channel {m.channel!r} is measured twice in one report"})
-                continue
-            powers[pos] = m.power_dbm
-            given = m.noise_dbm if m.noise_dbm is not None else rep.noise_dbm
-            if given is not None:
-                noise[pos] = given
-                any_noise = True
-        digest = content_hash(rep)
-        if rep.seq in rows:
-            if rows[rep.seq][0] != digest:
-                raise Conflict(f"{at}seq: seq {rep.seq} appears twice in this request with different content",
-                               errors=[{"path": f"{at}seq", "message": "repeated with other content"}])
-            continue
-        rows[rep.seq] = (digest, {
-            "node_id": node.id, "seq": rep.seq, "measured_at": rep.measured_at, "received_at": now,
-            "n_samples": rep.n_samples, "plan_revision": plan.revision, "powers": pack(powers),
-            "noise": pack(noise) if any_noise else None, "content_hash": digest})
+        if rep.measurements is not None:
+            if len(rep.measurements) > max_measurements:
+                errors.append({"path": f"{at}measurements", "message": f"at most {max_measurements} measurements "
+                               f"per report, got {len(rep.measurements)}"})
+            packed[i] = _pack_objects(rep, plan, at, errors)
+        else:
+            if len(rep.powers_dbm) > max_measurements:
+                errors.append({"path": f"{at}powers_dbm", "message": f"at most {max_measurements} measurements "
+                               f"per report, got {len(rep.powers_dbm)}"})
+            groups.setdefault(tuple(rep.channels if rep.channels is not None else channels), []).append(i)
+
+    for ids, members in groups.items():
+        own = reports[members[0]].channels is not None
+        where = f"{prefix}[{members[0]}].channels" if own and prefix else "channels"
+        positions = _positions(ids, plan, where, errors)
+        if positions is not None:
+            for i, blobs in zip(members, _pack_compact([reports[i] for i in members], positions,
+                                                       len(plan.positions))):
+                packed[i] = blobs
+
+    rows: dict[int, dict] = {}
     if errors:
         detail = "; ".join(f"{e['path']}: {e['message']}" for e in errors[:5])
         raise Unprocessable(f"nothing was stored: {detail}" + (" ..." if len(errors) > 5 else ""), errors=errors)
+    for i, rep in enumerate(reports):
+        powers, noise = packed[i]
+        digest = fingerprint(rep.seq, rep.measured_at, rep.n_samples, powers, noise)
+        if rep.seq in rows:
+            if rows[rep.seq]["content_hash"] != digest:
+                at = f"{prefix}[{i}]." if prefix else ""
+                raise Conflict(f"{at}seq: seq {rep.seq} appears twice in this request with different content",
+                               errors=[{"path": f"{at}seq", "message": "repeated with other content"}])
+            continue
+        rows[rep.seq] = {"node_id": node.id, "seq": rep.seq, "measured_at": rep.measured_at, "received_at": now,
+                         "n_samples": rep.n_samples, "plan_revision": plan.revision, "powers": powers,
+                         "noise": noise, "content_hash": digest}
     return rows
 
 
-# Built once (constructing a statement costs more than running it on this per-request path).
-_INSERT_NEW = {name: module.insert(Report.__table__).on_conflict_do_nothing(index_elements=["node_id", "seq"])
-               .returning(Report.__table__.c.seq) for name, module in (("sqlite", sqlite), ("postgresql", postgresql))}
-_SEEN = (update(Node.__table__).where(Node.__table__.c.id == bindparam("node"))
-         .values(last_seen=bindparam("now")))
+def _pack_objects(rep: ReportIn, plan: PlanIndex, at: str, errors: list) -> tuple[bytes, bytes | None]:
+    """The `measurements` form: one object per channel, walked one by one."""
+    positions = plan.positions
+    n_channels = len(positions)
+    # Plain lists, not numpy scalars, in this per-measurement loop (it runs 64 to 4096 times per report).
+    powers = [math.nan] * n_channels
+    noise = [math.nan] * n_channels
+    any_noise = False
+    for j, m in enumerate(rep.measurements):
+        pos = positions.get(m.channel)
+        if pos is None:
+            errors.append({"path": f"{at}measurements[{j}].channel", "message": _unknown(m.channel, plan)})
+            continue
+        if not math.isnan(powers[pos]):
+            errors.append({"path": f"{at}measurements[{j}].channel",
+                           "message": f"channel {m.channel!r} is measured twice in one report"})
+            continue
+        powers[pos] = m.power_dbm
+        given = m.noise_dbm if m.noise_dbm is not None else rep.noise_dbm
+        if given is not None:
+            noise[pos] = given
+            any_noise = True
+    return pack(powers), (pack(noise) if any_noise else None)
 
 
-def _store(session: Session, node, rows: dict[int, tuple[str, dict]], now: datetime) -> list[tuple[int, str]]:
-    """Store the new rows, acknowledge the identical ones, refuse a seq stored with other content.
+def _positions(ids: tuple[str, ...], plan: PlanIndex, where: str, errors: list) -> np.ndarray | None:
+    """Plan positions of a compact report's channel list, or None (errors appended) if any is unknown or
+    repeated."""
+    out = []
+    seen: set[str] = set()
+    ok = True
+    for j, channel in enumerate(ids):
+        pos = plan.positions.get(channel)
+        if pos is None:
+            errors.append({"path": f"{where}[{j}]", "message": _unknown(channel, plan)})
+            ok = False
+        elif channel in seen:
+            errors.append({"path": f"{where}[{j}]", "message": f"channel {channel!r} is listed twice"})
+            ok = False
+        seen.add(channel)
+        out.append(pos)
+    return np.array(out, dtype=np.intp) if ok else None
 
-    One ``INSERT ... ON CONFLICT (node_id, seq) DO NOTHING RETURNING seq`` (SQLite >= 3.35, PostgreSQL) stores
-    what is new and is atomic against a concurrent copy of the same report; only the seqs it skipped are
-    read back, to tell a retry (same content hash) from a conflict. On a conflict the caller's transaction is
-    rolled back (the request never commits), so nothing of the request is stored.
+
+def _pack_compact(reports: list[ReportIn], positions: np.ndarray, n_channels: int):
+    """The `powers_dbm` form for reports that follow one channel list: packed all at once.
+
+    Yields (powers, noise) blobs in the order of `reports`. Null powers (None) become NaN (numpy converts
+    None to NaN in a float array), i.e. not measured; the report's `noise_dbm` applies to its measured
+    channels, as it does to each of a `measurements` report's.
     """
-    table = Report.__table__
-    conn = session.connection()  # Core from here on: these statements run on every report request
-    dialect = conn.dialect.name
-    if dialect in ("sqlite", "postgresql"):
-        created = set(conn.execute(_INSERT_NEW[dialect], [row for _, row in rows.values()]).scalars())
-    else:  # any other backend: check, then insert (a concurrent twin may then fail with IntegrityError)
-        have = set(conn.execute(select(table.c.seq).where(table.c.node_id == node.id,
-                                                          table.c.seq.in_(list(rows)))).scalars())
-        new = [row for seq, (_, row) in rows.items() if seq not in have]
-        if new:
-            conn.execute(insert(table), new)
-        created = {row["seq"] for row in new}
-    skipped = [seq for seq in rows if seq not in created]
-    if skipped:
-        stored = dict(conn.execute(select(table.c.seq, table.c.content_hash)
-                                   .where(table.c.node_id == node.id, table.c.seq.in_(skipped))).all())
-        clashes = sorted(seq for seq in skipped if stored.get(seq) != rows[seq][0])
-        if clashes:
-            raise Conflict(f"seq {clashes[0]} was already stored with other content; a retry must re-send "
-                           f"exactly the same report, a new report needs a new seq",
-                           errors=[{"path": "seq", "message": f"seq {s} conflicts"} for s in clashes])
-    conn.execute(_SEEN, {"node": node.id, "now": now})
-    return [(seq, "created" if seq in created else "duplicate") for seq in rows]
+    given = np.array([rep.powers_dbm for rep in reports], dtype=float)  # (n_reports, len(positions))
+    powers = np.full((len(reports), n_channels), np.nan, dtype="<f4")
+    powers[:, positions] = given
+    floors = np.array([rep.noise_dbm for rep in reports], dtype=float)
+    noise = np.where(np.isnan(powers), np.nan, floors[:, None]).astype("<f4")
+    for k, rep in enumerate(reports):
+        yield powers[k].tobytes(), (noise[k].tobytes() if rep.noise_dbm is not None else None)
+
+
+def _unknown(channel: str, plan: PlanIndex) -> str:
+    known = ", ".join(list(plan.positions)[:20]) + (", ..." if len(plan.positions) > 20 else "")
+    return f"unknown channel {channel!r}; plan revision {plan.revision} has: {known}"

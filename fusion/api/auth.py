@@ -14,7 +14,7 @@ from ..errors import Forbidden, Unauthorized
 from ..models import Node
 from ..registry import hash_token, same_secret
 
-__all__ = ["role", "init_app", "bearer_token"]
+__all__ = ["role", "init_app", "bearer_token", "forget", "check_node_again"]
 
 ROLES = ("public", "reader", "node", "admin")
 
@@ -42,11 +42,36 @@ _BY_TOKEN = (select(Node.__table__.c.id, Node.__table__.c.name, Node.__table__.c
 
 
 def _node_for(token: str):
-    """(id, name, disabled) of the node whose token this is, or None. A short Core read (it runs on every
-    node request), never the write lock."""
+    """(id, name, disabled) of the node whose token this is, or None. A short Core read, never the write
+    lock."""
     with current_app.extensions["occfuse.read_engine"].connect() as conn:
         row = conn.execute(_BY_TOKEN, {"token_hash": hash_token(token)}).first()
     return None if row is None else tuple(row)
+
+
+_CACHE_MAX = 10_000  # enabled nodes remembered per app (a network has 5 to 1,000)
+
+
+def _cached_node(token_hash: str):
+    """(id, name) of an enabled node this process has seen with this token hash, or None.
+
+    Only for the report route: a hit is confirmed inside the report's own write transaction
+    (fusion/store.py, step 3), so a rotated token or a disabled node is refused there, and :func:`forget`
+    drops the stale entry.
+    """
+    return current_app.extensions.setdefault("occfuse.node_cache", {}).get(token_hash)
+
+
+def forget(token_hash: str) -> None:
+    """Drop a cached node (its token or state changed)."""
+    current_app.extensions.setdefault("occfuse.node_cache", {}).pop(token_hash, None)
+
+
+def check_node_again() -> None:
+    """Redo the node check from the database (after :class:`fusion.store.StaleNode`): raises 401 or 403 as
+    :func:`_check` would, or sets ``g.node_*`` afresh."""
+    forget(g.node_token_hash)
+    _check()
 
 
 def _who(token: str) -> tuple[str | None, tuple | None]:
@@ -72,6 +97,14 @@ def _check() -> None:
         raise Unauthorized(f"this route needs a bearer token (Authorization: Bearer <{needed} token>)")
     if needed == "admin" and not current_app.config.get("ADMIN_TOKEN"):
         raise Forbidden("admin routes are disabled: no admin token is configured (set OCCFUSE_ADMIN_TOKEN)")
+    if needed == "node":
+        token_hash = hash_token(token)
+        hit = _cached_node(token_hash)
+        if hit is not None and not same_secret(token, current_app.config.get("ADMIN_TOKEN")) \
+                and not same_secret(token, current_app.config.get("READ_TOKEN")):
+            g.node_id, g.node_name = hit
+            g.node_token_hash = token_hash
+            return
     who, node = _who(token)
     if who is None:
         raise Unauthorized(f"the bearer token matches no {needed} and no node; check the token "
@@ -91,6 +124,11 @@ def _check() -> None:
     if disabled:
         raise Forbidden(f"node {name!r} is disabled; an admin can re-enable it")
     g.node_id, g.node_name = node_id, name
+    g.node_token_hash = token_hash
+    cache = current_app.extensions.setdefault("occfuse.node_cache", {})
+    if len(cache) >= _CACHE_MAX:
+        cache.clear()
+    cache[token_hash] = (node_id, name)
 
 
 def init_app(app) -> None:

@@ -6,6 +6,7 @@ import json
 
 from flask import Response, current_app, g, request
 from pydantic import BaseModel, ValidationError
+from pydantic_core import from_json
 from sqlalchemy.exc import OperationalError
 from sqlalchemy.exc import TimeoutError as PoolTimeout
 from werkzeug.exceptions import HTTPException, RequestEntityTooLarge
@@ -72,6 +73,13 @@ def read_body(model: type[BaseModel] | None = None):
 
 
 def _parse(raw: bytes):
+    try:
+        # pydantic's own JSON parser first (~6x faster than json on the float arrays of a batch); it refuses
+        # NaN/Infinity, deep nesting and long integers as json below does, but json's answer to any body it
+        # refuses is the one we give, so such bodies are parsed again there to get that answer.
+        return from_json(raw, allow_inf_nan=False)
+    except ValueError:
+        pass
     try:
         return json.loads(raw, parse_constant=_reject_constant)
     except RecursionError:

@@ -4,13 +4,14 @@ from __future__ import annotations
 
 from flask import Blueprint, current_app, g
 
-from ..db import get_session
-from ..errors import Unprocessable
-from ..ingest import NodeRef, ingest_reports
+from ..db import read_session
+from ..errors import Conflict, Unprocessable
+from ..ingest import NodeRef, prepare_reports
 from ..metrics import REPORTS_ACCEPTED
 from ..models import utcnow
-from ..plan import last_seen_plan
-from .auth import role
+from ..plan import PlanIndex, last_seen_plan, plan_index
+from ..store import StaleNode, StalePlan, store_reports
+from .auth import check_node_again, role
 from .problems import read_body, respond
 from .schemas import BatchAck, ReportAck, ReportBatchIn, ReportIn
 
@@ -30,14 +31,34 @@ def create():
         raise Unprocessable(f"reports: at most {limit} reports per batch, got {len(parsed['reports'])}; split "
                             f"the batch", errors=[{"path": "reports", "message": f"more than {limit} items"}])
     body = read_body(ReportBatchIn if batch else ReportIn)
-    reports = body.reports if batch else [body]
-    session = get_session()
-    # Validate against the newest plan this process knows, before the write transaction (ingest confirms it).
-    plan = last_seen_plan(session.get_bind().url.render_as_string(hide_password=False))
-    results = ingest_reports(session, NodeRef(g.node_id, g.node_name), reports, prefix="reports" if batch else "",
-                             now=utcnow(), max_skew_s=current_app.config["MAX_SKEW_S"],
-                             max_measurements=current_app.config["MAX_MEASUREMENTS"], plan=plan)
-    session.commit()  # durable before we acknowledge
+    reports, channels = (body.reports, body.channels) if batch else ([body], None)
+    engine = current_app.extensions["occfuse.engine"]
+    cfg = current_app.config
+    check = dict(channels=channels, prefix="reports" if batch else "", max_skew_s=cfg["MAX_SKEW_S"],
+                 max_measurements=cfg["MAX_MEASUREMENTS"])
+    # Validate against the newest plan this process has seen, before the write transaction; the store
+    # confirms it inside the transaction (fusion/store.py), and a stale guess is re-read and tried again.
+    plan = last_seen_plan(engine.url.render_as_string(hide_password=False)) or _read_plan()
+    for attempt in range(3):
+        now = utcnow()
+        try:
+            rows = prepare_reports(NodeRef(g.node_id, g.node_name), reports, plan, now=now, **check)
+        except Unprocessable:
+            fresh = _read_plan()
+            if (fresh.revision, fresh.created_at) == (plan.revision, plan.created_at):
+                raise  # the guess was the newest plan: these are the report's own errors
+            plan = fresh  # maybe only outdated (a channel the new plan added): validate again
+            continue
+        try:
+            results = store_reports(engine, rows, plan=plan, token_hash=g.node_token_hash, now=now,
+                                    busy_timeout_s=cfg["SQLITE_BUSY_TIMEOUT_S"])
+            break
+        except StalePlan:
+            plan = _read_plan()
+        except StaleNode:
+            check_node_again()  # 401/403 if the token or the node changed; else the cache was only cold
+    else:
+        raise Conflict("the band plan changed several times while this request was stored; retry it")
     created = sum(status == "created" for _, status in results)
     REPORTS_ACCEPTED.labels("created").inc(created)
     REPORTS_ACCEPTED.labels("duplicate").inc(len(results) - created)
@@ -47,3 +68,11 @@ def create():
         return respond(ReportAck, {"seq": seq, "status": status}, status_code)
     return respond(BatchAck, {"created": created, "duplicates": len(results) - created,
                               "results": [{"seq": s, "status": st} for s, st in results]}, status_code)
+
+
+def _read_plan() -> PlanIndex:
+    with read_session() as session:
+        plan = plan_index(session)
+    if plan is None:
+        raise Conflict("no band plan is loaded yet; an admin must PUT /api/v1/plan before nodes can report")
+    return plan

@@ -118,17 +118,58 @@ class MeasurementIn(_In):
 
 
 class ReportIn(_In):
+    """One sweep, in one of two forms: `measurements` (one object per channel) or `powers_dbm` (one value per
+    channel, in the order of `channels`, given here or once for a whole batch)."""
+
     seq: int = Field(ge=0, le=2**63 - 1, description="Per-node sequence number; a retry re-sends the same seq.")
     measured_at: AwareDatetime = Field(description="RFC 3339 time of the measurement, with a UTC offset.")
     n_samples: int = Field(ge=1, le=10**12, description="Complex samples per channel measurement.")
     noise_dbm: DBm | None = Field(default=None, description="The node's noise floor per channel, dBm.")
     node: str | None = Field(default=None, description="Optional; if given it must name the token's node.")
-    measurements: list[MeasurementIn] = Field(min_length=1, max_length=4096,
-                                              description="At most one per plan channel (plans hold <= 4096).")
+    measurements: list[MeasurementIn] | None = Field(
+        default=None, min_length=1, max_length=4096,
+        description="At most one per plan channel (plans hold <= 4096). Give this or `powers_dbm`.")
+    channels: list[Annotated[str, Field(min_length=1, max_length=64)]] | None = Field(
+        default=None, min_length=1, max_length=4096,
+        description="Channel ids that `powers_dbm` follows; in a batch it may be given once for all reports.")
+    powers_dbm: list[DBm | None] | None = Field(
+        default=None, min_length=1, max_length=4096,
+        description="Mean power per complex sample (dBm) for each of `channels`, in that order; null = not "
+                    "measured. The compact form of `measurements` for a whole sweep.")
+
+    @model_validator(mode="after")
+    def _one_form(self):
+        if (self.measurements is None) == (self.powers_dbm is None):
+            raise ValueError("give either `measurements` or `powers_dbm` (with `channels`), not both or neither")
+        if self.channels is not None:
+            if self.powers_dbm is None:
+                raise ValueError("`channels` goes with `powers_dbm`; with `measurements` each names its channel")
+            if len(self.channels) != len(self.powers_dbm):
+                raise ValueError(f"`powers_dbm` has {len(self.powers_dbm)} values for {len(self.channels)} "
+                                 f"`channels`; give one value (or null) per channel")
+        if self.powers_dbm is not None and all(p is None for p in self.powers_dbm):
+            raise ValueError("`powers_dbm` holds only nulls; a report must measure at least one channel")
+        return self
 
 
 class ReportBatchIn(_In):
+    channels: list[Annotated[str, Field(min_length=1, max_length=64)]] | None = Field(
+        default=None, min_length=1, max_length=4096,
+        description="Channel ids that every `powers_dbm` report without its own `channels` follows.")
     reports: list[ReportIn] = Field(min_length=1)
+
+    @model_validator(mode="after")
+    def _channels_known(self):
+        for i, rep in enumerate(self.reports):
+            if rep.powers_dbm is None or rep.channels is not None:
+                continue
+            if self.channels is None:
+                raise ValueError(f"reports[{i}] gives `powers_dbm` without `channels`; give `channels` in the "
+                                 f"report or once beside `reports`")
+            if len(self.channels) != len(rep.powers_dbm):
+                raise ValueError(f"reports[{i}].powers_dbm has {len(rep.powers_dbm)} values for the batch's "
+                                 f"{len(self.channels)} `channels`; give one value (or null) per channel")
+        return self
 
 
 class ReportAck(_Out):

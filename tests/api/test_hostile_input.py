@@ -24,7 +24,7 @@ from sqlalchemy import func, select
 from fusion import create_app
 from fusion.api.schemas import ReportIn
 from fusion.db import upgrade
-from fusion.ingest import content_hash
+from fusion.ingest import fingerprint
 from fusion.models import Node, Report, unpack
 from tests.conftest import ADMIN
 
@@ -67,13 +67,21 @@ def _assert_accepted_round_trips_or_refused(app, response, sent, node="n1"):
             for raw in reports:
                 parsed = ReportIn.model_validate_json(json.dumps(raw))
                 row = s.scalars(select(Report).where(Report.seq == parsed.seq, Report.node_id == node_id)).one()
-                assert row.content_hash == content_hash(parsed)
+                assert row.content_hash == fingerprint(row.seq, row.measured_at, row.n_samples, row.powers,
+                                                       row.noise)
                 assert row.n_samples == parsed.n_samples
                 assert row.measured_at == parsed.measured_at.astimezone(timezone.utc)
                 stored = unpack(row.powers)
-                for m in parsed.measurements:
-                    # float32 storage (DESIGN.md "reports"): equal to the value rounded to float32
-                    assert stored[CHANNELS.index(m.channel)] == np.float32(m.power_dbm)
+                if parsed.measurements is not None:
+                    given = {m.channel: m.power_dbm for m in parsed.measurements}
+                else:  # the compact form: its own channel list or the batch's
+                    given = dict(zip(parsed.channels or sent["channels"], parsed.powers_dbm))
+                for channel in CHANNELS[:3]:
+                    # float32 storage (DESIGN.md "reports"): equal to the value rounded to float32; NaN where
+                    # the report did not measure the channel
+                    value = given.get(channel)
+                    expected = np.float32(np.nan if value is None else value)
+                    np.testing.assert_array_equal(stored[CHANNELS.index(channel)], expected)
         return
     assert 400 <= response.status_code < 500, (response.status_code, response.get_data(as_text=True)[:300])
     assert response.mimetype == "application/problem+json"
@@ -101,6 +109,13 @@ _valid_report = st.fixed_dictionaries(
      "n_samples": st.integers(1, 10**12),
      "measurements": st.lists(_measurement, min_size=1, max_size=3, unique_by=lambda m: m["channel"])},
     optional={"noise_dbm": st.floats(-130, -50) | st.none(), "node": st.just("n1")})
+_compact_report = st.lists(st.sampled_from(CHANNELS[:3]), min_size=1, max_size=3, unique=True).flatmap(
+    lambda ids: st.fixed_dictionaries(
+        {"seq": st.integers(0, 2**63 - 1), "measured_at": _times.map(datetime.isoformat),
+         "n_samples": st.integers(1, 10**12), "channels": st.just(ids),
+         "powers_dbm": st.lists(st.floats(-300, 100) | st.integers(-200, 50) | st.none(), min_size=len(ids),
+                                max_size=len(ids)).filter(lambda p: any(v is not None for v in p))},
+        optional={"noise_dbm": st.floats(-130, -50) | st.none()}))
 _bad_values = {
     "seq": st.integers(-5, -1) | st.integers(2**63, 2**64) | st.text(max_size=3) | st.floats(0, 10),
     "measured_at": st.text(max_size=8) | st.integers() | _times.map(lambda t: t.replace(tzinfo=None).isoformat()),
@@ -115,12 +130,27 @@ _bad_values = {
 _broken_report = st.tuples(_valid_report, st.sampled_from(sorted(_bad_values))).flatmap(
     lambda pair: _bad_values[pair[1]].map(lambda bad: {**pair[0], pair[1]: bad}))
 _report = _valid_report | _broken_report
+_bad_compact = {
+    "channels": st.just([]) | st.lists(st.sampled_from(["c0", "c0", "c9", "Ω-3"]), min_size=1, max_size=3)
+    | json_values,
+    "powers_dbm": st.just([]) | st.lists(st.floats(-400, 200) | st.none() | st.text(max_size=2), max_size=4)
+    | json_values,
+    "measurements": st.just([{"channel": "c0", "power_dbm": -90.0}]),
+}
+_compact = _compact_report | st.tuples(_compact_report, st.sampled_from(sorted(_bad_compact))).flatmap(
+    lambda pair: _bad_compact[pair[1]].map(lambda bad: {**pair[0], pair[1]: bad}))
+# A batch sharing one channel list: reports without their own follow the batch's `channels`.
+_shared_batch = st.lists(_compact_report, min_size=1, max_size=3).map(
+    lambda reps: {"channels": CHANNELS[:3], "reports": [
+        {**{k: v for k, v in r.items() if k not in ("channels", "powers_dbm")},
+         "powers_dbm": [dict(zip(r["channels"], r["powers_dbm"])).get(c) for c in CHANNELS[:3]]} for r in reps]})
 
 
 @settings(max_examples=300, deadline=None, derandomize=True, database=None,
           suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
-@given(value=_report | st.fixed_dictionaries({"reports": st.lists(_valid_report, min_size=0, max_size=3)})
-       | st.fixed_dictionaries({"reports": st.lists(_report, min_size=1, max_size=3)}))
+@given(value=_report | _compact | st.fixed_dictionaries({"reports": st.lists(_valid_report, min_size=0, max_size=3)})
+       | st.fixed_dictionaries({"reports": st.lists(_report | _compact, min_size=1, max_size=3)})
+       | _shared_batch)
 def test_near_valid_reports_and_batches_round_trip_or_are_refused(svc, value):
     app, client, node = svc
     before = _count(app)
@@ -132,7 +162,7 @@ def test_near_valid_reports_and_batches_round_trip_or_are_refused(svc, value):
 
 @settings(max_examples=30, deadline=None, derandomize=True, database=None,
           suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
-@given(value=_valid_report)
+@given(value=_valid_report | _compact_report)
 def test_the_valid_strategy_is_accepted(svc, value):
     """Guard against a vacuous property: every valid report is accepted (by a node of its own, so no seq
     stored by the tests above collides, and a fresh seq each) and round-trips."""

@@ -103,7 +103,12 @@ def prepare_reports(node, reports: list[ReportIn], plan: PlanIndex, *, channels:
             if len(rep.powers_dbm) > max_measurements:
                 errors.append({"path": f"{at}powers_dbm", "message": f"at most {max_measurements} measurements "
                                f"per report, got {len(rep.powers_dbm)}"})
-            groups.setdefault(tuple(rep.channels if rep.channels is not None else channels), []).append(i)
+            ids = rep.channels if rep.channels is not None else channels
+            if ids is None:
+                errors.append({"path": f"{at}channels", "message": "`powers_dbm` needs `channels`: the channel "
+                               "ids its values are for, in that order"})
+                continue
+            groups.setdefault(tuple(ids), []).append(i)
 
     for ids, members in groups.items():
         own = reports[members[0]].channels is not None

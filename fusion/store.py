@@ -86,7 +86,8 @@ def store_reports(engine: Engine, rows: dict[int, dict], *, plan: PlanIndex, tok
                   busy_timeout_s: float) -> list[tuple[int, str]]:
     """Store the new rows, acknowledge the identical ones, refuse a seq stored with other content.
 
-    `rows` come from :func:`fusion.ingest.prepare_reports` (one node, packed against `plan`). Returns
+    `rows` come from :func:`fusion.ingest.prepare_reports` (one node, packed against `plan`, received at
+    `now`: their ``received_at`` is not read). Returns
     ``[(seq, "created" | "duplicate"), ...]`` in the order of `rows`, after the commit. Raises
     :class:`StalePlan` or :class:`StaleNode` (nothing stored; the caller re-checks and may retry),
     :class:`~fusion.errors.Conflict` (nothing stored), or ``sqlalchemy.exc.OperationalError`` when the
@@ -107,9 +108,9 @@ def store_reports(engine: Engine, rows: dict[int, dict], *, plan: PlanIndex, tok
         cur.execute(d.confirm, (d.bind_time(now), node_id, token_hash))
         if cur.rowcount != 1:
             raise StaleNode()
-        params = [(r["node_id"], r["seq"], d.bind_time(r["measured_at"]), d.bind_time(r["received_at"]),
-                   r["n_samples"], r["plan_revision"], r["powers"], r["noise"], r["content_hash"])
-                  for r in rows.values()]
+        received = d.bind_time(now)  # the request's receipt time, bound once rather than once per row
+        params = [(r["node_id"], r["seq"], d.bind_time(r["measured_at"]), received, r["n_samples"],
+                   r["plan_revision"], r["powers"], r["noise"], r["content_hash"]) for r in rows.values()]
         created: set[int] = set()
         for i in range(0, len(params), _CHUNK):
             chunk = params[i:i + _CHUNK]

@@ -10,6 +10,9 @@ from __future__ import annotations
 
 import logging
 import os
+import threading
+import time
+import weakref
 
 from gunicorn import glogging
 from gunicorn.app.base import BaseApplication
@@ -23,6 +26,12 @@ _SCHEDULER = {}  # per worker process: its FusionScheduler
 # measured, 3 busy connections all on one worker and the other idle, half the throughput. A reconnect is taken
 # by whichever worker is free. Common practice (web servers cap requests per keep-alive connection at 100-1,000).
 KEEPALIVE_REQUESTS = 100
+# ... or once it has been open this long. Batches cost tens of milliseconds each, so a busy connection may send
+# few requests; without an age cap, 12 batch connections split 8/4 at accept time kept one worker at ~75 % of
+# the work for good (measured: tests/bench/bench_ingest.py). A reconnect a second costs nothing in comparison.
+KEEPALIVE_MAX_S = 1.0
+_BORN: "weakref.WeakKeyDictionary" = weakref.WeakKeyDictionary()  # connection socket -> monotonic time opened
+_BORN_LOCK = threading.Lock()
 
 
 def options(host: str, port: int, workers: int, threads: int) -> dict:
@@ -36,7 +45,18 @@ def options(host: str, port: int, workers: int, threads: int) -> dict:
 
 
 def _pre_request(worker, req) -> None:
-    if req.req_number >= KEEPALIVE_REQUESTS:  # answered with "Connection: close" (see KEEPALIVE_REQUESTS)
+    # Answered with "Connection: close" (see KEEPALIVE_REQUESTS and KEEPALIVE_MAX_S); the client reconnects
+    # and whichever worker is free takes the new connection.
+    if req.req_number >= KEEPALIVE_REQUESTS:
+        req.must_close = True
+        return
+    sock = getattr(getattr(req, "unreader", None), "sock", None)
+    if sock is None:
+        return
+    now = time.monotonic()
+    with _BORN_LOCK:
+        born = _BORN.setdefault(sock, now)
+    if now - born >= KEEPALIVE_MAX_S:
         req.must_close = True
 
 

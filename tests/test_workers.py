@@ -139,21 +139,29 @@ def test_two_workers_one_leader_and_takeover_after_sigkill(db_url, tmp_path):
             assert _metric(text, "occfuse_reports_accepted_total", {"outcome": "created"}) == 6
             assert _metric(text, "occfuse_reports_rejected_total", {"reason": "unauthenticated"}) == 1
 
-        # One keep-alive connection is closed by the server after KEEPALIVE_REQUESTS requests, so clients
-        # reconnect and the kernel can hand the new connection to the idler worker.
-        from fusion.workers import KEEPALIVE_REQUESTS
+        # One keep-alive connection is closed by the server after KEEPALIVE_REQUESTS requests or once it is
+        # KEEPALIVE_MAX_S old, whichever comes first, so clients reconnect and the kernel can hand the new
+        # connection to the idler worker.
+        from fusion.workers import KEEPALIVE_MAX_S, KEEPALIVE_REQUESTS
 
         host, port = url.removeprefix("http://").rsplit(":", 1)
         conn = HTTPConnection(host, int(port), timeout=20)
+        opened = time.monotonic()
         answers = []
         for _ in range(KEEPALIVE_REQUESTS):
+            sent = time.monotonic()
             conn.request("GET", "/healthz")
             r = conn.getresponse()
             r.read()
-            answers.append((r.status, r.getheader("Connection", "").lower()))
+            answers.append((r.status, r.getheader("Connection", "").lower(), sent - opened))
+            if answers[-1][1] == "close":
+                break
         conn.close()
-        assert answers[:-1] == [(200, "keep-alive")] * (KEEPALIVE_REQUESTS - 1)
-        assert answers[-1] == (200, "close")
+        assert all(a[:2] == (200, "keep-alive") for a in answers[:-1])
+        assert answers[-1][:2] == (200, "close")
+        # Closed at the request cap, or earlier only once the connection had reached its age cap (50 ms slack:
+        # the client's clock starts at connect, the server's at the first request).
+        assert len(answers) == KEEPALIVE_REQUESTS or answers[-1][2] >= KEEPALIVE_MAX_S - 0.05, answers[-3:]
 
         # Three epochs from the leader, and none from anyone else before the kill.
         i, _ = out.wait_for(lambda l: (e := _epoch_pid(l)) and e[1] == first, 60)
@@ -205,3 +213,32 @@ def test_two_workers_one_leader_and_takeover_after_sigkill(db_url, tmp_path):
             proc.wait()
         out.close()
         # a SIGKILL of the master would orphan its workers; they notice the master is gone and exit
+
+
+def test_keep_alive_connections_are_closed_by_request_count_or_age(monkeypatch):
+    """fusion.workers._pre_request: "Connection: close" at the KEEPALIVE_REQUESTS-th request, or on the first
+    request once the connection has been open KEEPALIVE_MAX_S (no server needed: gunicorn's request object is
+    stood in for)."""
+    import socket
+    from types import SimpleNamespace
+
+    from fusion import workers
+
+    clock = [100.0]
+    monkeypatch.setattr(workers.time, "monotonic", lambda: clock[0])
+    a, b = socket.socketpair()
+    try:
+        def request(number):
+            req = SimpleNamespace(req_number=number, must_close=False, unreader=SimpleNamespace(sock=a))
+            workers._pre_request(None, req)
+            return req.must_close
+
+        assert request(1) is False  # first sight of the connection: its age starts here
+        clock[0] += workers.KEEPALIVE_MAX_S / 2
+        assert request(2) is False
+        assert request(workers.KEEPALIVE_REQUESTS) is True  # the count cap, whatever the age
+        clock[0] += workers.KEEPALIVE_MAX_S / 2
+        assert request(3) is True  # the age cap, whatever the count
+    finally:
+        a.close()
+        b.close()

@@ -137,8 +137,9 @@ _bad_compact = {
     | json_values,
     "measurements": st.just([{"channel": "c0", "power_dbm": -90.0}]),
 }
-_compact = _compact_report | st.tuples(_compact_report, st.sampled_from(sorted(_bad_compact))).flatmap(
+_compact = (_compact_report | st.tuples(_compact_report, st.sampled_from(sorted(_bad_compact))).flatmap(
     lambda pair: _bad_compact[pair[1]].map(lambda bad: {**pair[0], pair[1]: bad}))
+    | _compact_report.map(lambda r: {k: v for k, v in r.items() if k != "channels"}))  # no channel list
 # A batch sharing one channel list: reports without their own follow the batch's `channels`.
 _shared_batch = st.lists(_compact_report, min_size=1, max_size=3).map(
     lambda reps: {"channels": CHANNELS[:3], "reports": [

@@ -123,8 +123,14 @@ def _warn_settings(app):
               help="Processes; more than 1 runs gunicorn, and one worker at a time (the lease holder) runs the "
                    "epochs.")
 @click.option("--threads", default=4, show_default=True, type=click.IntRange(1, 64),
-              help="Threads per gunicorn worker (with --workers > 1).")
-def serve(host, port, workers, threads):
+              help="Threads per gunicorn worker (with --workers > 1 and the gthread worker class).")
+@click.option("--worker-class", "worker_class", default="gthread", show_default=True,
+              type=click.Choice(["gthread", "sync"]), envvar="OCCFUSE_WORKER_CLASS",
+              help="gunicorn worker class (with --workers > 1): gthread keeps client connections alive and "
+                   "copes with slow clients; sync answers one request at a time per process, each on its own "
+                   "connection, which costs less CPU per request but needs a buffering reverse proxy in front "
+                   "(README, Operations).")
+def serve(host, port, workers, threads, worker_class):
     """Upgrade the database if needed, then serve the API and run the fusion epochs."""
     metrics_dir, master_pid = None, os.getpid()
     if workers > 1 and not os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
@@ -146,7 +152,7 @@ def serve(host, port, workers, threads):
 
             app.extensions["occfuse.engine"].dispose()  # never carry pooled connections across fork
             click.echo(f"occfuse starting {workers} workers (database {database})")
-            GunicornServer(options(host, port, workers, threads)).run()
+            GunicornServer(options(host, port, workers, threads, worker_class)).run()
             return
         _serve_one(app, host, port, database)
     finally:

@@ -34,11 +34,15 @@ _BORN: "weakref.WeakKeyDictionary" = weakref.WeakKeyDictionary()  # connection s
 _BORN_LOCK = threading.Lock()
 
 
-def options(host: str, port: int, workers: int, threads: int) -> dict:
-    """gunicorn settings for `workers` processes of `threads` threads each (gthread: threads cover DB waits)."""
+def options(host: str, port: int, workers: int, threads: int, worker_class: str = "gthread") -> dict:
+    """gunicorn settings for `workers` processes: `worker_class` "gthread" with `threads` threads each (threads
+    cover DB waits and slow clients), or "sync" (one request at a time per process, no keep-alive)."""
+    if worker_class not in ("gthread", "sync"):
+        raise ValueError(f"worker_class must be 'gthread' or 'sync', was {worker_class!r}")
     # No control socket: its default path is per user, so two servers on one host would fight over it.
     return {"bind": f"[{host}]:{port}" if ":" in host else f"{host}:{port}", "workers": workers,
-            "worker_class": "gthread", "threads": threads, "timeout": 60, "graceful_timeout": 20,
+            "worker_class": worker_class, "threads": threads if worker_class == "gthread" else 1,
+            "timeout": 60, "graceful_timeout": 20,
             "keepalive": 5, "preload_app": False, "control_socket_disable": True, "post_worker_init": _post_worker_init,
             "worker_exit": _worker_exit, "child_exit": _child_exit, "when_ready": _when_ready,
             "pre_request": _pre_request}

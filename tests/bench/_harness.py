@@ -72,7 +72,8 @@ class Server:
     """The service on 127.0.0.1 with 2 worker processes: ``occfuse serve --workers 2`` when that exists,
     else gunicorn started here on the app factory (WORKER_CLASS). `how` says which ran."""
 
-    def __init__(self, url: str, *, workers: int = 2, port: int = 18_473, scheduler: bool = False):
+    def __init__(self, url: str, *, workers: int = 2, port: int = 18_473, scheduler: bool = False,
+                 worker_class: str | None = None):
         self.base = f"127.0.0.1:{port}"
         env = {**os.environ, **ENV, "OCCFUSE_DATABASE_URL": url, "OCCFUSE_ADMIN_TOKEN": ADMIN,
                "OCCFUSE_CONFIG": "", "OCCFUSE_LOG_LEVEL": "WARNING", "OCCFUSE_INTERVAL_S": "5"}
@@ -81,7 +82,10 @@ class Server:
                    "--workers", str(workers)]
             if "BENCH_THREADS" in os.environ:
                 cmd += ["--threads", os.environ["BENCH_THREADS"]]
-            self.how = f"occfuse serve --workers {workers}"
+            if worker_class:
+                cmd += ["--worker-class", worker_class]
+            self.how = f"occfuse serve --workers {workers}" + (f" --worker-class {worker_class}" if worker_class
+                                                                else "")
         else:
             gunicorn = shutil.which("gunicorn", path=str(Path(sys.executable).parent)) or "gunicorn"
             cmd = [gunicorn, "-w", str(workers), "-k", WORKER_CLASS, "--threads", THREADS, "-b", self.base,

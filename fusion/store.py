@@ -18,7 +18,7 @@ exactly what the ORM would write and read. SQLite and PostgreSQL only (``ON CONF
 from __future__ import annotations
 
 import sqlite3
-from datetime import datetime
+from datetime import datetime, timezone
 from functools import lru_cache
 
 from sqlalchemy import Engine
@@ -61,6 +61,8 @@ class _Dialect:
         self.mark = mark
         utc = Report.__table__.c.measured_at.type.dialect_impl(dialect)
         self.bind_time = utc.bind_processor(dialect) or (lambda v: v)
+        if dialect.name == "sqlite":
+            self.bind_time = _sqlite_time  # the same text, ~4x faster (tests/test_store.py compares the two)
         self.read_time = utc.result_processor(dialect, None) or (lambda v: v)
         plan_time = PlanRevision.__table__.c.created_at.type.dialect_impl(dialect)
         self.read_plan_time = plan_time.result_processor(dialect, None) or (lambda v: v)
@@ -70,6 +72,12 @@ class _Dialect:
         row = "(" + ", ".join([self.mark] * len(_COLUMNS)) + ")"
         return (f"INSERT INTO report ({', '.join(_COLUMNS)}) VALUES {', '.join([row] * n_rows)} "
                 f"ON CONFLICT (node_id, seq) DO NOTHING RETURNING seq")
+
+
+def _sqlite_time(value: datetime) -> str:
+    """What SQLAlchemy's UTCDateTime -> SQLite DATETIME processors write for an aware datetime: naive UTC as
+    ``YYYY-MM-DD HH:MM:SS.ffffff`` (always with microseconds, so stored times sort as text)."""
+    return value.astimezone(timezone.utc).replace(tzinfo=None).isoformat(" ", "microseconds")
 
 
 _DIALECTS: dict[str, _Dialect] = {}

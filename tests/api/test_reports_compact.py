@@ -7,6 +7,7 @@ import numpy as np
 import pytest
 from sqlalchemy import select
 
+from fusion.api.schemas import BatchAck
 from fusion.ingest import fingerprint
 from fusion.models import Report, unpack
 from tests.conftest import ADMIN, now_utc
@@ -58,6 +59,11 @@ def test_batch_shares_one_channel_list(app, net):
     r = net.post("kit-1", {"channels": ["ch1", "ch3"], "reports": reports})
     assert r.status_code == 201 and (r.json["created"], r.json["duplicates"]) == (3, 0)
     assert [s["seq"] for s in r.json["results"]] == [1, 2, 3]
+    assert BatchAck.model_validate_json(r.data).results[0].status == "created"  # the documented shape
+    again = net.post("kit-1", {"channels": ["ch1", "ch3"], "reports": reports[:2]})
+    assert again.status_code == 200
+    assert BatchAck.model_validate_json(again.data).model_dump() == {
+        "created": 0, "duplicates": 2, "results": [{"seq": 1, "status": "duplicate"}, {"seq": 2, "status": "duplicate"}]}
     stored = [unpack(row.powers) for row in rows(app)]
     np.testing.assert_array_equal(stored, np.float32([[np.nan, -90.0 - k, np.nan, -80.0] for k in range(3)]))
 

@@ -242,3 +242,41 @@ def test_keep_alive_connections_are_closed_by_request_count_or_age(monkeypatch):
     finally:
         a.close()
         b.close()
+
+
+def test_sync_worker_class_serves_reports_and_runs_epochs(tmp_path):
+    """`serve --workers 2 --worker-class sync`: one request per connection (answered "Connection: close"),
+    reports stored, and the lease holder runs epochs."""
+    from fusion.db import upgrade
+
+    url = f"sqlite:///{tmp_path / 'sync.db'}"
+    upgrade(url)
+    env = {**os.environ, "OCCFUSE_DATABASE_URL": url, "OCCFUSE_ADMIN_TOKEN": ADMIN, "OCCFUSE_CONFIG": "",
+           "OCCFUSE_INTERVAL_S": "0.5", "OCCFUSE_LEASE_TTL_S": str(TTL_S), "OCCFUSE_LOG_LEVEL": "DEBUG",
+           "OCCFUSE_LOG_FORMAT": "json"}
+    env.pop("PROMETHEUS_MULTIPROC_DIR", None)
+    proc = subprocess.Popen([sys.executable, "-m", "fusion.cli", "serve", "--host", "127.0.0.1", "--port", "0",
+                             "--workers", "2", "--worker-class", "sync"],
+                            env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+    out = _Output(proc)
+    try:
+        _, base = out.wait_for(lambda l: (m := re.search(r"serving on (http://127\.0\.0\.1:\d+)", l)) and m.group(1),
+                               60)
+        _, leader = out.wait_for(_lease_taken, 60)
+        admin = {"Authorization": f"Bearer {ADMIN}"}
+        with httpx.Client(base_url=base, timeout=20) as http:
+            assert http.put("/api/v1/plan", json=PLAN, headers=admin).status_code == 200
+            token = http.post("/api/v1/nodes", json={"name": "n1"}, headers=admin).json()["token"]
+            body = {"seq": 1, "measured_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()), "n_samples": 1000,
+                    "channels": ["ch0", "ch1"], "powers_dbm": [-90.0, -95.0]}
+            r = http.post("/api/v1/reports", json=body, headers={"Authorization": f"Bearer {token}"})
+            assert r.status_code == 201 and r.headers["Connection"].lower() == "close"
+        out.wait_for(lambda l: (e := _epoch_pid(l)) and e[1] == leader, 60)
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        try:
+            proc.wait(timeout=30)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait()
+        out.close()

@@ -130,6 +130,8 @@ def store_reports(engine: Engine, rows: dict[int, dict], *, plan: PlanIndex, tok
         conn.commit()
     except (sqlite3.OperationalError, _pg_operational_error()) as exc:
         _rollback(conn)
+        if d.name != "sqlite":
+            pooled.invalidate()  # a server-side failure may have broken the connection: never reuse it
         raise OperationalError("storing reports", None, exc) from exc
     except BaseException:
         _rollback(conn)

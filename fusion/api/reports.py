@@ -58,7 +58,8 @@ def create():
         except StaleNode:
             check_node_again()  # 401/403 if the token or the node changed; else the cache was only cold
     else:
-        raise Conflict("the band plan changed several times while this request was stored; retry it")
+        raise Conflict("the band plan or this node changed several times while the request was being stored; "
+                       "nothing was stored; retry it")
     created = sum(status == "created" for _, status in results)
     REPORTS_ACCEPTED.labels("created").inc(created)
     REPORTS_ACCEPTED.labels("duplicate").inc(len(results) - created)

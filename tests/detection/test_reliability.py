@@ -444,6 +444,23 @@ class TestState:
         fresh = ReliabilityModel().resize(1, n_channels=6)
         assert neutral.pd_[1] == fresh.pd_[0] and neutral.pd_[0] == model.pd_[0]
 
+    def test_arrays_with_every_row_present_match_the_json_restore(self):
+        # With every node's row present from_arrays builds the arrays from the stored ones directly (speed);
+        # it must give what the JSON restore gives, reordered or not, and relearn a changed noise window.
+        model = self._trained(np.random.default_rng(30))
+        state, arrays, nodes = model.get_state(include_nodes=False), model.node_arrays(), model.get_state()["nodes"]
+        for rows in ([0, 1, 2], [2, 0, 1]):
+            restored = ReliabilityModel.from_arrays(state, arrays, rows)
+            via_json = ReliabilityModel.from_state(model.get_state(), nodes=[nodes[k] | {"pinned": None} for k in rows])
+            for name in [f + "_" for f in arrays] + ["pd_", "pf_", "noise_dbm_", "snr_", "trust_"]:
+                assert_allclose(getattr(restored, name), getattr(via_json, name), rtol=0, atol=0, err_msg=name)
+            assert restored.flags_ == via_json.flags_
+        restored.kd_ch_[0, 0] += 1.0
+        assert arrays["kd_ch"][2, 0] == model.kd_ch_[2, 0]  # the restored model shares no array with the store
+        wider = ReliabilityModel.from_arrays(state, arrays, [0, 1, 2], noise_window=5)
+        assert wider.noise_history_.shape == (3, 5) and np.all(np.isnan(wider.noise_history_))
+        assert_allclose(wider.local_pf_, model.local_pf_, rtol=0, atol=0)
+
     def test_compact_arrays_keep_the_learned_estimates(self):
         # float32 per-channel arrays: decayed counts and SNR sums round at ~6e-8 relative (float32 epsilon,
         # IEEE 754), so the estimates built from them agree to well within 1e-6.

@@ -443,7 +443,7 @@ class ReliabilityModel:
         if contribution is None:
             pd = np.clip(self.pd_channel_, _CLIP, 1 - _CLIP)
             pf = np.clip(self.pf_, _CLIP, 1 - _CLIP)[:, None]
-            w = np.where(u == 1, np.log(pd / pf), np.log((1 - pd) / (1 - pf)))
+            w = np.log(np.where(u == 1, pd / pf, (1 - pd) / (1 - pf)))  # one log, not two: same values
             contribution = self.trust_[:, None] * w
         contrib = np.where(np.isfinite(u) & np.isfinite(contribution), contribution, 0.0)
         loo = logit[None, :] - contrib
@@ -514,9 +514,6 @@ class ReliabilityModel:
         for name, (a, b) in (("pd", post_d), ("pf", post_f)):
             setattr(self, name + "_", a / (a + b))
             setattr(self, name + "_std_", np.sqrt(a * b / ((a + b) ** 2 * (a + b + 1))))
-        s = self.channel_shrinkage
-        self.pd_channel_ = (self.kd_ch_ + s * self.pd_[:, None]) / (self.nd_ch_ + s)
-        self.pf_channel_ = (self.kf_ch_ + s * self.pf_[:, None]) / (self.nf_ch_ + s)
         with np.errstate(invalid="ignore", divide="ignore"):
             self.snr_ = np.where(self.snr_weight_ > 0,
                                  np.maximum(self.snr_sum_ / self.snr_weight_, 0.0), np.nan)
@@ -566,6 +563,18 @@ class ReliabilityModel:
         # nothing in an epoch reads it, and it was the dearest part of every refresh.
         q = np.array([(1 - self.ci_level) / 2, (1 + self.ci_level) / 2])
         return special.betaincinv(a[:, None], b[:, None], q[None, :])
+
+    # The per-channel rates are computed when read, like the intervals: an epoch reads pd_channel_ once (in
+    # _labels) and pf_channel_ never, and each is a few passes over (n_nodes, n_channels) arrays.
+    @property
+    def pd_channel_(self):
+        s = self.channel_shrinkage
+        return (self.kd_ch_ + s * self.pd_[:, None]) / (self.nd_ch_ + s)
+
+    @property
+    def pf_channel_(self):
+        s = self.channel_shrinkage
+        return (self.kf_ch_ + s * self.pf_[:, None]) / (self.nf_ch_ + s)
 
     @property
     def pd_ci_(self):

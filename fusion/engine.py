@@ -130,7 +130,16 @@ def _row_nanmedian(a: np.ndarray) -> np.ndarray:
     out = np.full(a.shape[0], np.nan)
     has = ~np.isnan(a).all(axis=1)
     if has.any():
-        out[has] = np.nanmedian(a[has], axis=1)
+        # A report's noise is usually one figure for every channel: where a row's values are all equal that
+        # figure is the median (np.nanmedian cost ~5 ms at 1,000 x 256).
+        b = a[has]
+        with np.errstate(invalid="ignore"):
+            lo, hi = np.fmin.reduce(b, axis=1), np.fmax.reduce(b, axis=1)
+        med = lo.copy()
+        spread = lo != hi
+        if spread.any():
+            med[spread] = np.nanmedian(b[spread], axis=1)
+        out[has] = med
     return out
 
 

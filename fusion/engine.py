@@ -183,7 +183,7 @@ def _reliability(session: Session, nodes: list[Node], revision: int,
     rows = {node_id: (pinned, bool(state)) for node_id, pinned, state in found}
     # Databases written before migration 0003 hold the learner state as JSON per node.
     legacy = {node_id: state.get("model") for node_id, _, state in found if state}
-    stored = session.get(FusionState, "reliability")
+    stored = session.execute(select(FusionState.value, FusionState.blob).where(FusionState.key == "reliability")).first()
     if stored is None:
         return ReliabilityModel().resize(len(nodes), n_channels=n_channels), rows
     glob = stored.value

@@ -13,7 +13,7 @@ from datetime import datetime, timedelta
 from typing import Any, Mapping
 
 import numpy as np
-from sqlalchemy import bindparam, insert, select, update
+from sqlalchemy import String, bindparam, cast, insert, select, update
 from sqlalchemy.orm import Session
 
 from .detection import energy, rules
@@ -179,10 +179,13 @@ def _reliability(session: Session, nodes: list[Node], revision: int,
                  n_channels: int) -> tuple[ReliabilityModel, dict[int, tuple[str | None, bool]]]:
     """The learner sized to `nodes`, and node id -> (pin, row still holds pre-0003 JSON state) for every node
     that has a node_reliability row."""
-    found = session.execute(select(NodeReliability.node_id, NodeReliability.pinned, NodeReliability.state)).all()
-    rows = {node_id: (pinned, bool(state)) for node_id, pinned, state in found}
-    # Databases written before migration 0003 hold the learner state as JSON per node.
-    legacy = {node_id: state.get("model") for node_id, _, state in found if state}
+    # Databases written before migration 0003 hold the learner state as JSON per node. Only rows whose JSON
+    # is not the empty object are decoded (decoding 1,000 "{}" cost ~5 ms an epoch); NULL was never legacy.
+    state = NodeReliability.state
+    legacy = {node_id: value.get("model") for node_id, value in session.execute(
+        select(NodeReliability.node_id, state).where(cast(state, String) != "{}")) if value}
+    rows = {node_id: (pinned, node_id in legacy)
+            for node_id, pinned in session.execute(select(NodeReliability.node_id, NodeReliability.pinned))}
     stored = session.execute(select(FusionState.value, FusionState.blob).where(FusionState.key == "reliability")).first()
     if stored is None:
         return ReliabilityModel().resize(len(nodes), n_channels=n_channels), rows

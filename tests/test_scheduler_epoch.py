@@ -74,6 +74,8 @@ def test_an_epoch_landing_in_between_is_not_overwritten(app, net, monkeypatch):
     _feed(net, rng, now - timedelta(seconds=11))
     sched = FusionScheduler(app)
     sched.current_interval()  # as start() does: the settings row exists, so the epoch is prepared
+    sched.tick(now - timedelta(seconds=20))  # learned state exists: the one in between updates it
+    assert sched.epochs == 1 and sched.recomputed == 0
     prepare, want = sched._prepare, {}
 
     def prepare_then_another_epoch(at):

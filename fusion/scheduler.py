@@ -6,6 +6,12 @@ lease job (take or renew the lease every ``lease.renew_s``; see fusion/lease.py)
 ``RETENTION_S`` is set, the retention pass. Epoch and retention run only while this process leads, and an epoch
 commits only after re-checking the lease inside its own transaction (fencing).
 
+An epoch is read and computed in a read transaction (:func:`fusion.engine.prepare_epoch`) and written in a
+write transaction of its own (:func:`fusion.engine.write_epoch`): on SQLite the write lock, which every report
+upload needs, is held only while writing (~0.1 s instead of the whole epoch at 1,000 nodes x 256 channels).
+If another epoch or a new plan landed in between (:func:`fusion.engine.epoch_basis` differs), the epoch is
+computed again inside the write transaction, as it always was before.
+
 The interval is read from the stored fusion settings after every epoch, so ``PUT /api/v1/fusion`` with a new
 ``interval_s`` takes effect from the next epoch without a restart.
 """
@@ -15,14 +21,15 @@ from __future__ import annotations
 import logging
 import os
 import threading
+import time
 from datetime import datetime, timedelta, timezone
 
 from apscheduler.schedulers.background import BackgroundScheduler
 from sqlalchemy import func, select
 
-from .engine import run_epoch
+from .engine import PreparedEpoch, epoch_basis, prepare_epoch, run_epoch, write_epoch
 from .lease import make_lease
-from .models import Decision, utcnow
+from .models import Decision, FusionSettings, utcnow
 from .retention import prune_reports
 from .settings import get_settings
 
@@ -47,6 +54,8 @@ class FusionScheduler:
         self.leading = False
         self.interval_s: float | None = None
         self.epochs = 0
+        self.recomputed = 0  # epochs computed again under the write lock (their basis changed meanwhile)
+        self.last_write_s: float | None = None  # the last epoch's write transaction, waiting for the lock included
         self.last_error: str | None = None
         self._scheduler: BackgroundScheduler | None = None
         self._lock = threading.Lock()
@@ -103,8 +112,15 @@ class FusionScheduler:
             return
         with self._lock:
             try:
+                now = now or utcnow()
+                prep = self._prepare(now)
+                write_started = time.perf_counter()
                 with self._sessions()() as session, session.begin():
-                    epoch = run_epoch(session, now or utcnow(), self.app.config)
+                    if prep is not None and epoch_basis(session) == prep.basis:
+                        epoch = write_epoch(session, prep)
+                    else:  # nothing prepared, or prepared from state that has changed since
+                        self.recomputed += prep is not None
+                        epoch = run_epoch(session, now, self.app.config)
                     interval = float(get_settings(session, self.app.config).interval_s)
                     counts = {}
                     if epoch is not None:
@@ -112,6 +128,7 @@ class FusionScheduler:
                             Decision.epoch_id == epoch.id).group_by(Decision.state)).all())
                     if self.lease is not None and not self.lease.holds(session):
                         raise _LostLease
+                self.last_write_s = time.perf_counter() - write_started
                 self.epochs += 1
                 self.last_error = None
                 if epoch is not None:
@@ -132,6 +149,13 @@ class FusionScheduler:
             log.info("fusion interval changed from %.3g s to %.3g s", self.interval_s, interval)
             self.interval_s = interval
             self._scheduler.reschedule_job(JOB_ID, trigger="interval", seconds=interval)
+
+    def _prepare(self, now: datetime) -> PreparedEpoch | None:
+        """The epoch computed in a read transaction (no write lock), or None to compute it while writing."""
+        with self.app.extensions["occfuse.read_sessions"]() as session, session.begin():
+            if session.get(FusionSettings, 1) is None:  # a new database: get_settings must write the row
+                return None
+            return prepare_epoch(session, now, self.app.config)
 
     def prune(self) -> int:
         """One bounded retention pass (leader only); returns the number of reports deleted."""

@@ -175,3 +175,44 @@ def test_learned_state_survives_between_epochs_packed_and_from_the_old_json_layo
         assert all(has_json for _, has_json in rows.values())
     for name, value in again.node_arrays().items():
         np.testing.assert_array_equal(value, packed[name], err_msg=name)
+
+
+def test_row_nanmedian_matches_numpy_with_and_without_a_single_figure_per_row():
+    # The engine takes a row whose values are all equal as its own median (speed); other rows go to
+    # np.nanmedian. Same answers as np.nanmedian on every kind of row.
+    from fusion.engine import _row_nanmedian
+
+    rng = np.random.default_rng(41)
+    a = np.full((12, 16), -100.0)
+    a[1] = rng.normal(-100.0, 1.0, 16)  # a figure per channel
+    a[2, :5] = np.nan  # one figure, some channels without
+    a[3] = np.nan  # no figure at all: NaN
+    a[4, 7] = -95.0  # one channel differs
+    a[5, ::2], a[5, 1::2] = np.nan, rng.normal(size=8)
+    want = np.array([np.nan if np.isnan(r).all() else np.nanmedian(r) for r in a])
+    assert np.array_equal(_row_nanmedian(a), want, equal_nan=True)
+
+
+def test_report_times_read_as_sqlite_text_match_the_datetimes(app):
+    # On SQLite the epoch parses measured_at from its stored text with numpy (speed); it must give the
+    # seconds datetime.timestamp() gives, with and without microseconds, for text written by SQLAlchemy.
+    from datetime import datetime, timezone
+
+    from sqlalchemy import DateTime
+
+    from fusion.engine import _posix_seconds
+
+    times = [datetime(2026, 12, 2, 16, 43, 1, tzinfo=timezone.utc),
+             datetime(2026, 12, 2, 16, 43, 1, 123456, tzinfo=timezone.utc),
+             datetime(1999, 12, 31, 23, 59, 59, 999999, tzinfo=timezone.utc)]
+    engine = app.extensions["occfuse.engine"]
+    if engine.dialect.name == "sqlite":  # the text exactly as SQLAlchemy's SQLite DateTime writes it
+        write = DateTime().dialect_impl(engine.dialect).bind_processor(engine.dialect)
+        stored = [write(t.replace(tzinfo=None)) for t in times]
+        assert stored[0] == "2026-12-02 16:43:01.000000"  # the format the parse relies on
+    else:
+        stored = [t.isoformat(sep=" ").replace("+00:00", "") for t in times]
+    want = np.array([t.timestamp() for t in times])
+    assert np.array_equal(_posix_seconds(stored, as_text=True), want)
+    assert np.array_equal(_posix_seconds(times, as_text=False), want)
+    assert _posix_seconds([], as_text=True).shape == (0,)

@@ -37,6 +37,8 @@ __all__ = ["ReliabilityModel", "FLAGS", "PINS"]
 FLAGS = ("silent", "stuck", "suspect", "drift")
 PINS = ("trusted", "excluded")
 _STATE_VERSION = 1
+# Flag lists by bit pattern (bit k set: FLAGS[k] applies).
+_FLAG_LISTS = tuple(tuple(f for k, f in enumerate(FLAGS) if code >> k & 1) for code in range(1 << len(FLAGS)))
 _CLIP = 1e-6  # keeps ln(Pd/Pf) finite for always-yes / always-no nodes (common practice)
 
 # Per-node state: name -> (shape kind, fill value).  "n" = scalar per node, "c" = per channel,
@@ -248,6 +250,16 @@ class ReliabilityModel:
 
         Returns self.  ``n_channels`` is needed on the first call only.
         """
+        self._allocate(n_nodes, n_channels=n_channels)
+        self._refresh()
+        return self
+
+    def _allocate(self, n_nodes, *, n_channels=None, given=None):
+        """:meth:`resize` without the refresh: the restores overwrite the new rows and refresh once.
+
+        `given` maps field names to arrays to take as the new rows (as they are, no copy) where their
+        shape fits, instead of filled ones that a restore would overwrite.
+        """
         # Input validation
         self._check_params()
         old = getattr(self, "n_nodes_", 0)
@@ -266,14 +278,17 @@ class ReliabilityModel:
 
         n_new = int(n_nodes) - old
         widths = {"n": (), "c": (self.n_channels_,), "w": (int(self.noise_window),)}
+        given = given or {}
         for name, (kind, fill) in _FIELDS.items():
-            block = np.full((n_new,) + widths[kind], fill)
+            block = given.get(name)
+            if block is None or block.shape != (n_new,) + widths[kind]:
+                block = np.full((n_new,) + widths[kind], fill)
+                if name == "local_pf":
+                    block[:] = self.local_pf
             cur = getattr(self, name + "_", None)
             setattr(self, name + "_", block if cur is None else np.concatenate([cur, block]))
-        self.local_pf_[old:] = self.local_pf
         self.pinned_ = list(self.pinned_) + [None] * n_new
         self.n_nodes_ = int(n_nodes)
-        self._refresh()
         return self
 
     # -- the epoch update -----------------------------------------------------------------
@@ -428,7 +443,7 @@ class ReliabilityModel:
         if contribution is None:
             pd = np.clip(self.pd_channel_, _CLIP, 1 - _CLIP)
             pf = np.clip(self.pf_, _CLIP, 1 - _CLIP)[:, None]
-            w = np.where(u == 1, np.log(pd / pf), np.log((1 - pd) / (1 - pf)))
+            w = np.log(np.where(u == 1, pd / pf, (1 - pd) / (1 - pf)))  # one log, not two: same values
             contribution = self.trust_[:, None] * w
         contrib = np.where(np.isfinite(u) & np.isfinite(contribution), contribution, 0.0)
         loo = logit[None, :] - contrib
@@ -486,7 +501,7 @@ class ReliabilityModel:
                 raise ValueError(f"`pinned` entries must be one of {PINS + (None,)}, was {v!r}")
         self.pinned_ = pins
         if hasattr(self, "trust_"):
-            self._refresh()
+            self._apply_pins()  # pins change nothing but the trust: no full refresh
         return self
 
     # -- derived estimates ----------------------------------------------------------------
@@ -496,15 +511,9 @@ class ReliabilityModel:
         (ad, bd), (af, bf) = self.prior_pd, self.prior_pf
         post_d = (ad + self.kd_, bd + self.nd_ - self.kd_)
         post_f = (af + self.kf_, bf + self.nf_ - self.kf_)
-        q = np.array([(1 - self.ci_level) / 2, (1 + self.ci_level) / 2])
         for name, (a, b) in (("pd", post_d), ("pf", post_f)):
             setattr(self, name + "_", a / (a + b))
             setattr(self, name + "_std_", np.sqrt(a * b / ((a + b) ** 2 * (a + b + 1))))
-            # Equal-tailed Beta interval: betaincinv is the Beta quantile function.
-            setattr(self, name + "_ci_", special.betaincinv(a[:, None], b[:, None], q[None, :]))
-        s = self.channel_shrinkage
-        self.pd_channel_ = (self.kd_ch_ + s * self.pd_[:, None]) / (self.nd_ch_ + s)
-        self.pf_channel_ = (self.kf_ch_ + s * self.pf_[:, None]) / (self.nf_ch_ + s)
         with np.errstate(invalid="ignore", divide="ignore"):
             self.snr_ = np.where(self.snr_weight_ > 0,
                                  np.maximum(self.snr_sum_ / self.snr_weight_, 0.0), np.nan)
@@ -535,13 +544,47 @@ class ReliabilityModel:
         stuck = self.stuck_run_ >= self.stuck_epochs
         suspect = self.suspect_ > 0
         trust = np.where(suspect, np.minimum(p_ok, self.suspect_trust), p_ok)
-        trust = np.where(stuck, 0.0, trust) * np.where(drift, self.drift_trust, 1.0)
-        pins = np.array(self.pinned_, dtype=object)
-        trust = np.where(pins == "trusted", 1.0, np.where(pins == "excluded", 0.0, trust))
-        self.trust_ = np.clip(trust.astype(float), 0.0, 1.0)
+        self._trust_unpinned = np.where(stuck, 0.0, trust) * np.where(drift, self.drift_trust, 1.0)
+        self._apply_pins()
         self.silent_, self.stuck_, self.drift_ = silent, stuck, drift
-        table = np.stack([silent, stuck, suspect, drift], axis=1)
-        self.flags_ = [[f for f, on in zip(FLAGS, row) if on] for row in table]
+        # One bit per flag, in FLAGS order; a list per node from a table (a loop over flags per node cost
+        # ~1 ms a call at 1,000 nodes).
+        code = silent.astype(int) | stuck.astype(int) << 1 | suspect.astype(int) << 2 | drift.astype(int) << 3
+        self.flags_ = [list(_FLAG_LISTS[c]) for c in code.tolist()]
+
+    def _apply_pins(self):
+        """``trust_`` from the learned trust and the pins (the one part of the estimates pins change)."""
+        pins = np.array(self.pinned_, dtype=object)
+        trust = np.where(pins == "trusted", 1.0, np.where(pins == "excluded", 0.0, self._trust_unpinned))
+        self.trust_ = np.clip(trust.astype(float), 0.0, 1.0)
+
+    def _credible_interval(self, a, b):
+        # Equal-tailed Beta interval: betaincinv is the Beta quantile function.  Computed when asked for:
+        # nothing in an epoch reads it, and it was the dearest part of every refresh.
+        q = np.array([(1 - self.ci_level) / 2, (1 + self.ci_level) / 2])
+        return special.betaincinv(a[:, None], b[:, None], q[None, :])
+
+    # The per-channel rates are computed when read, like the intervals: an epoch reads pd_channel_ once (in
+    # _labels) and pf_channel_ never, and each is a few passes over (n_nodes, n_channels) arrays.
+    @property
+    def pd_channel_(self):
+        s = self.channel_shrinkage
+        return (self.kd_ch_ + s * self.pd_[:, None]) / (self.nd_ch_ + s)
+
+    @property
+    def pf_channel_(self):
+        s = self.channel_shrinkage
+        return (self.kf_ch_ + s * self.pf_[:, None]) / (self.nf_ch_ + s)
+
+    @property
+    def pd_ci_(self):
+        (a, b) = self.prior_pd
+        return self._credible_interval(a + self.kd_, b + self.nd_ - self.kd_)
+
+    @property
+    def pf_ci_(self):
+        (a, b) = self.prior_pf
+        return self._credible_interval(a + self.kf_, b + self.nf_ - self.kf_)
 
     def noise_for(self, noise_dbm_reported):
         """Noise floor to normalise with: the node's own figure, else the learned floor.
@@ -632,7 +675,7 @@ class ReliabilityModel:
         n_ch_state = int(state["n_channels"])
         n_ch = n_ch_state if n_channels is None else int(n_channels)
 
-        model = cls(**params).resize(len(entries), n_channels=n_ch)
+        model = cls(**params)._allocate(len(entries), n_channels=n_ch)
         for i, d in enumerate(entries):
             if d is not None:
                 model._set_node(i, d, same_channels=n_ch == n_ch_state)
@@ -675,11 +718,18 @@ class ReliabilityModel:
         n_ch_state = int(state["n_channels"])
         n_ch = n_ch_state if n_channels is None else int(n_channels)
 
-        model = cls(**params).resize(rows.size, n_channels=n_ch)
         have = rows >= 0
-        for name, (kind, _) in _FIELDS.items():
-            if kind == "c" and n_ch != n_ch_state:
-                continue
+        same = {name for name, (kind, _) in _FIELDS.items() if kind != "c" or n_ch == n_ch_state}
+        if have.all():
+            # Every node has a row (the usual epoch): the arrays are built from the stored ones at once.
+            # Filling new 1,000 x 256 arrays first and then overwriting them cost ~10 ms in page faults.
+            identity = rows.size == stored and np.array_equal(rows, np.arange(stored))
+            given = {name: (np.asarray(arrays[name]) if identity else np.asarray(arrays[name])[rows]).astype(float)
+                     for name in same}  # astype copies: the model never shares the caller's arrays
+            # (_allocate fills any array whose shape does not fit, e.g. after a noise window change)
+            return cls(**params)._allocate(rows.size, n_channels=n_ch, given=given)._finish_restore(state)
+        model = cls(**params)._allocate(rows.size, n_channels=n_ch)
+        for name in same:
             value = np.asarray(arrays[name], dtype=float)
             target = getattr(model, name + "_")
             if value.shape[1:] != target.shape[1:]:

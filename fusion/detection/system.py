@@ -486,7 +486,7 @@ def clipped_llr_cumulants(n_samples, snr, trust=1.0, clip=np.inf, *, hypothesis=
         fast = (n >= WH_MIN_SAMPLES) & np.isfinite(c)
         scale = 1.0 if hypothesis == 0 else 1.0 + g
         if np.all(fast):
-            return _blocked_wh(n, g, s, c, np.broadcast_to(scale, n.shape))
+            return _row_shared_wh(n, g, s, c, np.broadcast_to(scale, n.shape))
         if np.any(fast):
             out = [np.empty(n.shape) for _ in range(3)]
             wh = _blocked_wh(n[fast], g[fast], s[fast], c[fast], np.broadcast_to(scale, n.shape)[fast])
@@ -545,6 +545,40 @@ def _blocked_wh(n, g, s, c, scale):
         for o, p in zip(out, part):
             o[lo:lo + _WH_BLOCK] = p
     return tuple(o.reshape(shape) for o in out)
+
+
+def _row_shared_wh(n, g, s, c, scale):
+    """:func:`_blocked_wh`, evaluated once per row for the cells that share their row's inputs.
+
+    A node measures every channel with the same samples and trust, and its SNR stays the design value on
+    every channel it has not learned one for (most of them), so most cells of a row repeat one set of
+    inputs: the row's median of each (the value held by most cells when one value holds more than half).
+    The same formula on the same numbers gives the same cumulants; only the other cells are computed one
+    by one.  Falls back to every cell when the inputs are not 2-D or fewer than half the cells share.
+    """
+    args = (n, g, s, c, scale)
+    if n.ndim != 2 or n.shape[1] < 2:
+        return _blocked_wh(*args)
+    refs = [None] * len(args)
+    same = np.ones(n.shape, dtype=bool)
+    for i in (1, 0, 2, 3, 4):  # the SNR first: where it differs most, stop before the other medians
+        v = args[i]
+        if v.strides[1] == 0:  # a row broadcast along the channels: its first column, no median needed
+            refs[i] = v[:, 0]
+            continue
+        refs[i] = np.median(v, axis=1)
+        same &= v == refs[i][:, None]
+        if np.count_nonzero(same) < same.size // 2:
+            return _blocked_wh(*args)
+    other = ~same
+    per_row = _blocked_wh(*refs)
+    per_cell = _blocked_wh(*(v[other] for v in args))
+    out = []
+    for row, cell in zip(per_row, per_cell):
+        o = np.repeat(row[:, None], n.shape[1], axis=1)
+        o[other] = cell
+        out.append(o)
+    return tuple(out)
 
 
 def _clipped_gamma_wh(n, g, s, c, scale):

@@ -328,6 +328,31 @@ class TestFlags:
         assert set(PINS) == {"trusted", "excluded"} and FLAGS == ("silent", "stuck", "suspect", "drift")
 
 
+    def test_pins_and_restores_give_what_a_full_refresh_gives(self):
+        # set_pins only re-applies the pins and the restores refresh once (speed): every estimate must
+        # still be what recomputing everything from the counts gives.
+        rng = np.random.default_rng(29)
+        model = ReliabilityModel(leave_one_out=False)
+        for epoch in range(12):
+            votes = np.vstack([np.ones(8), np.zeros(8), in_spec(epoch, 1)[0], rng.integers(0, 2, 8)])
+            feed(model, votes, np.where(np.arange(8) % 3 == 0, 0.99, 0.01), epoch=epoch,
+                 noise=np.r_[-100.0, -90.0, np.nan, -100.0])
+        restored = ReliabilityModel.from_arrays(model.get_state(include_nodes=False), model.node_arrays(),
+                                                [0, 1, 2, 3]).set_pins(["excluded", "trusted", None, None])
+        full = ReliabilityModel.from_arrays(model.get_state(include_nodes=False), model.node_arrays(),
+                                            [0, 1, 2, 3])
+        full.pinned_ = ["excluded", "trusted", None, None]
+        full._refresh()
+        for name in ("pd_", "pf_", "pd_ci_", "pf_ci_", "pd_channel_", "noise_dbm_", "snr_", "trust_",
+                     "p_violation_", "suspect_"):
+            assert_allclose(getattr(restored, name), getattr(full, name), rtol=0, atol=0, err_msg=name)
+        assert restored.flags_ == full.flags_
+        assert restored.trust_[:2].tolist() == [0.0, 1.0]
+        flags = np.stack([full.silent_, full.stuck_, full.suspect_ > 0, full.drift_], axis=1)
+        assert full.flags_ == [[f for f, on in zip(FLAGS, row) if on] for row in flags]
+        assert any(full.flags_) and not all(full.flags_)  # the check saw some flags and some clean nodes
+
+
 class TestLeaveOneOut:
     def test_a_node_cannot_confirm_itself(self):
         # Node 0 alone moves the log-odds by +3 nats: with its term removed the posterior is 0.5.
@@ -418,6 +443,23 @@ class TestState:
         neutral = ReliabilityModel.from_arrays(state, model.node_arrays(), [0, -1])
         fresh = ReliabilityModel().resize(1, n_channels=6)
         assert neutral.pd_[1] == fresh.pd_[0] and neutral.pd_[0] == model.pd_[0]
+
+    def test_arrays_with_every_row_present_match_the_json_restore(self):
+        # With every node's row present from_arrays builds the arrays from the stored ones directly (speed);
+        # it must give what the JSON restore gives, reordered or not, and relearn a changed noise window.
+        model = self._trained(np.random.default_rng(30))
+        state, arrays, nodes = model.get_state(include_nodes=False), model.node_arrays(), model.get_state()["nodes"]
+        for rows in ([0, 1, 2], [2, 0, 1]):
+            restored = ReliabilityModel.from_arrays(state, arrays, rows)
+            via_json = ReliabilityModel.from_state(model.get_state(), nodes=[nodes[k] | {"pinned": None} for k in rows])
+            for name in [f + "_" for f in arrays] + ["pd_", "pf_", "noise_dbm_", "snr_", "trust_"]:
+                assert_allclose(getattr(restored, name), getattr(via_json, name), rtol=0, atol=0, err_msg=name)
+            assert restored.flags_ == via_json.flags_
+        restored.kd_ch_[0, 0] += 1.0
+        assert arrays["kd_ch"][2, 0] == model.kd_ch_[2, 0]  # the restored model shares no array with the store
+        wider = ReliabilityModel.from_arrays(state, arrays, [0, 1, 2], noise_window=5)
+        assert wider.noise_history_.shape == (3, 5) and np.all(np.isnan(wider.noise_history_))
+        assert_allclose(wider.local_pf_, model.local_pf_, rtol=0, atol=0)
 
     def test_compact_arrays_keep_the_learned_estimates(self):
         # float32 per-channel arrays: decayed counts and SNR sums round at ~6e-8 relative (float32 epsilon,

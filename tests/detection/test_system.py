@@ -266,6 +266,34 @@ class TestClippedLlrCumulants:
             system.clipped_llr_cumulants(100, 0.1, method="fast")
 
 
+    def test_cells_sharing_their_rows_inputs_match_every_cell_computed(self):
+        # Cells that repeat their row's inputs are computed once per row (speed); the result must be what
+        # computing every cell gives.  Same formula on the same numbers: equal up to the last bit of
+        # numpy's vectorised exp/cbrt (1e-15 relative allows that, nothing more).
+        rng = np.random.default_rng(5)
+        shape = (300, 64)
+        n = np.where(rng.random((300, 1)) < 0.9, 4096.0, rng.choice([100.0, 20_000.0], size=(300, 1)))
+        n = np.repeat(n, 64, axis=1)
+        n[7, 3] = 200.0  # one pooled cell with other samples
+        learned = rng.random(shape) < 0.15  # a learned SNR here and there, the design value elsewhere
+        g = np.where(learned, rng.uniform(0.05, 0.6, shape), 0.1)
+        s = rng.uniform(0.0, 1.0, (300, 1))
+        s[:5] = 0.0  # trust 0: a zero-slope term
+        for hyp in (0, 1):
+            got = system.clipped_llr_cumulants(n, g, s, np.log(9.0), hypothesis=hyp)
+            scale = np.broadcast_to(1.0 if hyp == 0 else 1.0 + g, shape)
+            want = system._blocked_wh(*np.broadcast_arrays(n, g, s, np.log(9.0), scale))
+            for a, b in zip(got, want):
+                assert a.shape == shape
+                assert_allclose(a, b, rtol=1e-15, atol=0)
+        # Too few cells alike: every cell computed, same answer.
+        g_all = rng.uniform(0.05, 0.6, shape)
+        got = system.clipped_llr_cumulants(n, g_all, s, np.log(9.0))
+        want = system._blocked_wh(*np.broadcast_arrays(n, g_all, s, np.log(9.0), 1.0))
+        for a, b in zip(got, want):
+            assert_allclose(a, b, rtol=1e-15, atol=0)
+
+
 class TestSystemPerformance:
     def test_input_validation(self):
         with pytest.raises(ValueError, match="`signal` must be one of"):

@@ -110,3 +110,23 @@ def test_fusion_settings_warn_below_the_snr_wall(make_app, admin):
     assert r.status_code == 200 and r.json["warnings"] == []
     # Unstated uncertainty (the default, 0 dB): no wall, no warning.
     assert make_app().test_client().get("/api/v1/fusion").json["warnings"] == []
+
+
+def test_cached_answers_follow_each_new_epoch_and_plan(app, net):
+    """Answers are cached per (newest epoch, newest plan): a new epoch or a new plan must show at once."""
+    names = [f"n{i}" for i in range(3)]
+    for name in names:
+        net.register(name)
+    rng = np.random.default_rng(6)
+    feed(net, names, {"ch1"}, rng=rng, snr=1.0)
+    epoch(app, rule="egc", min_nodes=2)
+    first = net.client.get("/api/v1/channels").json
+    assert net.client.get("/api/v1/channels").json == first  # the cached answer, unchanged
+    feed(net, names, {"ch1"}, rng=rng, snr=1.0)
+    epoch(app, rule="egc", min_nodes=2)
+    second = net.client.get("/api/v1/channels").json
+    assert second["as_of"] != first["as_of"]
+    net.plan({"channels": [{"id": "new0", "center_hz": 9e8, "bandwidth_hz": 6e6}]})
+    after_plan = net.client.get("/api/v1/channels").json
+    assert [c["id"] for c in after_plan["channels"]] == ["new0"]
+    assert net.client.get("/api/v1/channels/free").json["channels"] == []  # new0 has no decision yet

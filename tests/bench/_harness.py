@@ -82,6 +82,7 @@ class Server:
                    "--workers", str(workers)]
             if "BENCH_THREADS" in os.environ:
                 cmd += ["--threads", os.environ["BENCH_THREADS"]]
+            worker_class = worker_class or os.environ.get("BENCH_WORKER_CLASS")  # scripts without the option
             if worker_class:
                 cmd += ["--worker-class", worker_class]
             self.how = f"occfuse serve --workers {workers}" + (f" --worker-class {worker_class}" if worker_class

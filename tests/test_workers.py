@@ -7,6 +7,7 @@ bounded; the takeover bound itself (TTL + TTL/3) is proved with an injected cloc
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import queue
@@ -107,18 +108,34 @@ def _metric(text: str, name: str, labels: dict | None = None) -> float:
     return total
 
 
-def test_two_workers_one_leader_and_takeover_after_sigkill(db_url, tmp_path):
+@contextlib.contextmanager
+def _serve(db_url: str, *extra: str):
+    """`occfuse serve` on a free loopback port with 0.5 s epochs and JSON logs; yields (process, output). The
+    process is killed at exit if the test has not stopped it."""
     env = {**os.environ, "OCCFUSE_DATABASE_URL": db_url, "OCCFUSE_ADMIN_TOKEN": ADMIN, "OCCFUSE_CONFIG": "",
            "OCCFUSE_INTERVAL_S": "0.5", "OCCFUSE_LEASE_TTL_S": str(TTL_S), "OCCFUSE_LOG_LEVEL": "DEBUG",
            "OCCFUSE_LOG_FORMAT": "json"}
     env.pop("PROMETHEUS_MULTIPROC_DIR", None)  # serve makes its own fresh one
     proc = subprocess.Popen([sys.executable, "-m", "fusion.cli", "serve", "--host", "127.0.0.1", "--port", "0",
-                             "--workers", "2", "--threads", "2"],
+                             "--workers", "2", *extra],
                             env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
     out = _Output(proc)
     try:
-        _, url = out.wait_for(lambda l: (m := re.search(r"serving on (http://127\.0\.0\.1:\d+)", l)) and m.group(1),
-                              60)
+        yield proc, out
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+        out.close()
+
+
+def _serving_url(out) -> str:
+    return out.wait_for(lambda l: (m := re.search(r"serving on (http://127\.0\.0\.1:\d+)", l)) and m.group(1), 60)[1]
+
+
+def test_two_workers_one_leader_and_takeover_after_sigkill(db_url, tmp_path):
+    with _serve(db_url, "--threads", "2") as (proc, out):
+        url = _serving_url(out)
         _, first = out.wait_for(_lease_taken, 60)
         admin = {"Authorization": f"Bearer {ADMIN}"}
         with httpx.Client(base_url=url, timeout=20) as http:
@@ -207,12 +224,7 @@ def test_two_workers_one_leader_and_takeover_after_sigkill(db_url, tmp_path):
                 rec = json.loads(l)
                 assert {"time", "level", "logger", "pid", "message"} <= set(rec)
         assert token not in "\n".join(lines) and ADMIN not in "\n".join(lines) and "wrong-tok" not in "\n".join(lines)
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait()
-        out.close()
-        # a SIGKILL of the master would orphan its workers; they notice the master is gone and exit
+        # (_serve kills the master if an assertion failed first; its workers notice the master is gone and exit)
 
 
 def test_keep_alive_connections_are_closed_by_request_count_or_age(monkeypatch):
@@ -251,17 +263,8 @@ def test_sync_worker_class_serves_reports_and_runs_epochs(tmp_path):
 
     url = f"sqlite:///{tmp_path / 'sync.db'}"
     upgrade(url)
-    env = {**os.environ, "OCCFUSE_DATABASE_URL": url, "OCCFUSE_ADMIN_TOKEN": ADMIN, "OCCFUSE_CONFIG": "",
-           "OCCFUSE_INTERVAL_S": "0.5", "OCCFUSE_LEASE_TTL_S": str(TTL_S), "OCCFUSE_LOG_LEVEL": "DEBUG",
-           "OCCFUSE_LOG_FORMAT": "json"}
-    env.pop("PROMETHEUS_MULTIPROC_DIR", None)
-    proc = subprocess.Popen([sys.executable, "-m", "fusion.cli", "serve", "--host", "127.0.0.1", "--port", "0",
-                             "--workers", "2", "--worker-class", "sync"],
-                            env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
-    out = _Output(proc)
-    try:
-        _, base = out.wait_for(lambda l: (m := re.search(r"serving on (http://127\.0\.0\.1:\d+)", l)) and m.group(1),
-                               60)
+    with _serve(url, "--worker-class", "sync") as (proc, out):
+        base = _serving_url(out)
         _, leader = out.wait_for(_lease_taken, 60)
         admin = {"Authorization": f"Bearer {ADMIN}"}
         with httpx.Client(base_url=base, timeout=20) as http:
@@ -272,11 +275,5 @@ def test_sync_worker_class_serves_reports_and_runs_epochs(tmp_path):
             r = http.post("/api/v1/reports", json=body, headers={"Authorization": f"Bearer {token}"})
             assert r.status_code == 201 and r.headers["Connection"].lower() == "close"
         out.wait_for(lambda l: (e := _epoch_pid(l)) and e[1] == leader, 60)
-    finally:
         proc.send_signal(signal.SIGTERM)
-        try:
-            proc.wait(timeout=30)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait()
-        out.close()
+        assert proc.wait(timeout=60) == 0

@@ -4,7 +4,6 @@ evaluate, replay)."""
 from __future__ import annotations
 
 import json
-import logging
 import os
 import signal
 import sys

@@ -8,11 +8,10 @@ from __future__ import annotations
 
 import logging
 import secrets
-import sys
 import tempfile
 import threading
 import time
-from datetime import datetime, timedelta, timezone
+from datetime import datetime, timezone
 from pathlib import Path
 
 import httpx

@@ -24,7 +24,7 @@ import numpy as np
 
 from .api.schemas import ReportIn
 from .errors import Conflict, Forbidden, Unprocessable
-from .models import Node, pack
+from .models import pack
 from .plan import PlanIndex
 
 __all__ = ["fingerprint", "prepare_reports", "NodeRef", "same_content"]

@@ -17,7 +17,6 @@ from typing import NamedTuple
 import numpy as np
 from scipy import special, stats
 
-from . import energy
 
 __all__ = [
     "SystemPerformance",

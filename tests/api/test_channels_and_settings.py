@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from fusion.scheduler import FusionScheduler
-from tests.conftest import energy_dbm, now_utc
+from tests.conftest import now_utc
 from tests.test_engine import epoch, feed
 
 

@@ -10,7 +10,7 @@ from sqlalchemy import select
 from fusion.api.schemas import BatchAck
 from fusion.ingest import fingerprint
 from fusion.models import Report, unpack
-from tests.conftest import ADMIN, now_utc
+from tests.conftest import ADMIN
 
 
 def rows(app) -> list[Report]:

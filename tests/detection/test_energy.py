@@ -173,6 +173,20 @@ class TestDetectionRayleigh:
         # Zero SNR: Pd = Pf.
         assert_allclose(energy.detection_rayleigh(7.0, 5, 0.0), energy.false_alarm(7.0, 5), **EXACT)
 
+    @pytest.mark.parametrize("n", [7, 100, 1000, 4096, 100_000])
+    @pytest.mark.parametrize("mean_total", [1e-300, 1e-12, 1e-3, 0.1, 1.0, 20.0, 400.0])
+    def test_low_mean_snr_against_numerical_integration(self, n, mean_total):
+        """The closed form cancels when the mean total SNR is small against N (it once gave Pd < Pf, and NaN
+        for a subnormal SNR). Reference: the AWGN Pd (scipy.stats.ncx2) integrated over the exponential SNR
+        law with scipy.integrate.quad; rtol 1e-7 is quad's accuracy here, and Pd never falls below Pf."""
+        tau = energy.threshold(0.05, n)
+        pd = energy.detection_rayleigh(tau, n, mean_total / n)
+        assert pd >= energy.false_alarm(tau, n) - 1e-15
+        if mean_total >= 1e-3:  # below that quad sees a delta at zero; Pd = Pf to double precision
+            assert_allclose(pd, _quad_average(tau, n, mean_total, 1.0), rtol=1e-7)
+        else:
+            assert_allclose(pd, energy.false_alarm(tau, n), rtol=1e-9)
+
 
 class TestDetectionNakagami:
     def test_input_validation(self):

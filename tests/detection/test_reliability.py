@@ -19,7 +19,6 @@ import pytest
 from numpy.testing import assert_allclose
 from scipy import special, stats
 
-from fusion.detection import energy
 from fusion.detection.reliability import FLAGS, PINS, ReliabilityModel
 
 N = 50

@@ -9,7 +9,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
-from fusion.detection import energy, performance, rules, system
+from fusion.detection import energy, performance, rules
 
 N = np.array([50.0, 50.0, 80.0, 40.0, 60.0])
 SNR = np.array([0.3, 0.15, 0.06, 0.1, 0.2])

@@ -11,7 +11,7 @@ from hypothesis import strategies as st
 from numpy.testing import assert_allclose
 from scipy import integrate, stats
 
-from fusion.detection import performance, rules, system
+from fusion.detection import performance, system
 
 # Closed forms: rtol 1e-9, atol 1e-12 (round-off of the special functions).
 EXACT = dict(rtol=1e-9, atol=1e-12)

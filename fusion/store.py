@@ -95,8 +95,8 @@ def store_reports(engine: Engine, rows: dict[int, dict], *, plan: PlanIndex, tok
     """Store the new rows, acknowledge the identical ones, refuse a seq stored with other content.
 
     `rows` come from :func:`fusion.ingest.prepare_reports` (one node, packed against `plan`, received at
-    `now`: their ``received_at`` is not read). Returns
-    ``[(seq, "created" | "duplicate"), ...]`` in the order of `rows`, after the commit. Raises
+    `now`: their ``received_at`` is not read). Returns ``[(seq, "created" | "duplicate"), ...]`` in the
+    order of `rows`, after the commit. Raises
     :class:`StalePlan` or :class:`StaleNode` (nothing stored; the caller re-checks and may retry),
     :class:`~fusion.errors.Conflict` (nothing stored), or ``sqlalchemy.exc.OperationalError`` when the
     database stayed locked past `busy_timeout_s` (nothing stored; answered 503).
@@ -113,10 +113,10 @@ def store_reports(engine: Engine, rows: dict[int, dict], *, plan: PlanIndex, tok
         newest = cur.fetchone()
         if newest is None or (newest[0], d.read_plan_time(newest[1])) != (plan.revision, plan.created_at):
             raise StalePlan()
-        cur.execute(d.confirm, (d.bind_time(now), node_id, token_hash))
+        received = d.bind_time(now)  # the request's receipt time, bound once rather than once per row
+        cur.execute(d.confirm, (received, node_id, token_hash))
         if cur.rowcount != 1:
             raise StaleNode()
-        received = d.bind_time(now)  # the request's receipt time, bound once rather than once per row
         params = [(r["node_id"], r["seq"], d.bind_time(r["measured_at"]), received, r["n_samples"],
                    r["plan_revision"], r["powers"], r["noise"], r["content_hash"]) for r in rows.values()]
         created: set[int] = set()

@@ -145,6 +145,7 @@ def test_dashboard_follows_a_live_simulation(make_app, page, artifacts):
         assert {"free", "occupied"} <= chart_states
         if not shot.exists():
             page.screenshot(path=str(shot), full_page=True)
+        page.goto("about:blank")  # stop the page's polling before the server goes (else a poll may be reset)
 
 
 @pytest.mark.parametrize("db_url", ["sqlite"], indirect=True)
@@ -175,6 +176,7 @@ def test_with_a_read_token_the_page_asks_for_it_and_keeps_it_in_session_storage(
         page.wait_for_selector("#band .cell")
         assert READER not in page.evaluate("document.documentElement.outerHTML")
         assert ADMIN not in page.evaluate("document.documentElement.outerHTML")
+        page.goto("about:blank")  # stop the page's polling before the server goes (else a poll may be reset)
 
 
 @pytest.mark.parametrize("ci, outcome", [("true", pytest.fail.Exception), ("", pytest.skip.Exception)])

@@ -200,7 +200,8 @@ def _reliability(session: Session, nodes: list[Node], revision: int,
         select(NodeReliability.node_id, state).where(cast(state, String) != "{}")) if value}
     rows = {node_id: (pinned, node_id in legacy)
             for node_id, pinned in session.execute(select(NodeReliability.node_id, NodeReliability.pinned))}
-    stored = session.execute(select(FusionState.value, FusionState.blob).where(FusionState.key == "reliability")).first()
+    stored = session.execute(select(FusionState.value, FusionState.blob)
+                             .where(FusionState.key == "reliability")).first()
     if stored is None:
         return ReliabilityModel().resize(len(nodes), n_channels=n_channels), rows
     glob = stored.value

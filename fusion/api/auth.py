@@ -59,12 +59,12 @@ def _cached_node(token_hash: str):
     (fusion/store.py, step 3), so a rotated token or a disabled node is refused there, and :func:`forget`
     drops the stale entry.
     """
-    return current_app.extensions.setdefault("occfuse.node_cache", {}).get(token_hash)
+    return current_app.extensions["occfuse.node_cache"].get(token_hash)
 
 
 def forget(token_hash: str) -> None:
     """Drop a cached node (its token or state changed)."""
-    current_app.extensions.setdefault("occfuse.node_cache", {}).pop(token_hash, None)
+    current_app.extensions["occfuse.node_cache"].pop(token_hash, None)
 
 
 def check_node_again() -> None:
@@ -125,11 +125,12 @@ def _check() -> None:
         raise Forbidden(f"node {name!r} is disabled; an admin can re-enable it")
     g.node_id, g.node_name = node_id, name
     g.node_token_hash = token_hash
-    cache = current_app.extensions.setdefault("occfuse.node_cache", {})
+    cache = current_app.extensions["occfuse.node_cache"]
     if len(cache) >= _CACHE_MAX:
         cache.clear()
     cache[token_hash] = (node_id, name)
 
 
 def init_app(app) -> None:
+    app.extensions["occfuse.node_cache"] = {}  # token hash -> (id, name); see _cached_node
     app.before_request(_check)

@@ -67,8 +67,8 @@ def create():
     if not batch:
         seq, status = results[0]
         return respond(ReportAck, {"seq": seq, "status": status}, status_code)
-    # Written directly (the BatchAck shape; tests/api/test_reports_compact.py checks it against the schema): validating 500 result
-    # objects through pydantic cost more than storing them.
+    # Written directly (the BatchAck shape; tests/api/test_reports_compact.py checks it against the schema):
+    # validating 500 result objects through pydantic cost more than storing them.
     items = ",".join(f'{{"seq":{s},"status":"{st}"}}' for s, st in results)  # ints and two fixed words
     body = f'{{"created":{created},"duplicates":{len(results) - created},"results":[{items}]}}'
     return Response(body, status=status_code, mimetype="application/json")

@@ -63,7 +63,8 @@ def test_batch_shares_one_channel_list(app, net):
     again = net.post("kit-1", {"channels": ["ch1", "ch3"], "reports": reports[:2]})
     assert again.status_code == 200
     assert BatchAck.model_validate_json(again.data).model_dump() == {
-        "created": 0, "duplicates": 2, "results": [{"seq": 1, "status": "duplicate"}, {"seq": 2, "status": "duplicate"}]}
+        "created": 0, "duplicates": 2,
+        "results": [{"seq": 1, "status": "duplicate"}, {"seq": 2, "status": "duplicate"}]}
     stored = [unpack(row.powers) for row in rows(app)]
     np.testing.assert_array_equal(stored, np.float32([[np.nan, -90.0 - k, np.nan, -80.0] for k in range(3)]))
 

@@ -14,7 +14,7 @@ from werkzeug.exceptions import HTTPException, RequestEntityTooLarge
 from ..errors import APIError, BadRequest, Unprocessable
 from ..plan import error_path
 
-__all__ = ["problem", "init_app", "read_body", "read_query", "respond", "validation_errors"]
+__all__ = ["problem", "init_app", "raw_body", "read_body", "read_query", "respond", "validation_errors"]
 
 PROBLEM_TYPE = "application/problem+json"
 MAX_ERRORS = 100  # listed per problem: a 50,000-item bad batch must not produce a 10 MB answer
@@ -45,12 +45,9 @@ def _unprocessable(errors: list[dict], what: str) -> Unprocessable:
     return Unprocessable(f"{what} failed validation, nothing was stored: {detail}", errors=errors)
 
 
-def read_body(model: type[BaseModel] | None = None):
-    """Return the parsed JSON body (a dict/list), or a validated `model` instance.
-
-    415 without a JSON content type, 413 over MAX_CONTENT_LENGTH (raised by get_data), 400 for malformed JSON,
-    422 with field paths for schema errors.
-    """
+def raw_body() -> bytes:
+    """The request body's bytes, after the checks every JSON body gets: 415 without a JSON content type, 413
+    over MAX_CONTENT_LENGTH (raised by get_data)."""
     if not request.is_json:
         raise _UnsupportedMediaType()
     raw = request.get_data(cache=True)
@@ -60,6 +57,16 @@ def read_body(model: type[BaseModel] | None = None):
         # an error; parsing the cut-off prefix would give a misleading 400. Refuse it as too large instead
         # (a chunked body of exactly the limit is refused too: the cut cannot be told from a real end).
         raise RequestEntityTooLarge()
+    return raw
+
+
+def read_body(model: type[BaseModel] | None = None):
+    """Return the parsed JSON body (a dict/list), or a validated `model` instance.
+
+    415 without a JSON content type, 413 over MAX_CONTENT_LENGTH (raised by get_data), 400 for malformed JSON,
+    422 with field paths for schema errors.
+    """
+    raw = raw_body()
     if "occfuse_body" in g:  # parsed and checked once per request (a view may call this twice)
         parsed = g.occfuse_body
     else:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from flask import Blueprint, Response, current_app, g
+from pydantic import ValidationError
 
 from ..db import read_session
 from ..errors import Conflict, Unprocessable
@@ -12,7 +13,7 @@ from ..models import utcnow
 from ..plan import PlanIndex, last_seen_plan, plan_index
 from ..store import StaleNode, StalePlan, store_reports
 from .auth import check_node_again, role
-from .problems import read_body, respond
+from .problems import raw_body, read_body, respond
 from .schemas import ReportAck, ReportBatchIn, ReportIn
 
 __all__ = ["bp"]
@@ -23,14 +24,7 @@ bp = Blueprint("reports", __name__, url_prefix="/api/v1/reports")
 @bp.post("")
 @role("node")
 def create():
-    parsed = read_body()
-    batch = isinstance(parsed, dict) and "reports" in parsed
-    limit = current_app.config["MAX_BATCH"]
-    # Count before validating the items: a huge batch is refused without validating (or listing) each one.
-    if batch and isinstance(parsed["reports"], list) and len(parsed["reports"]) > limit:
-        raise Unprocessable(f"reports: at most {limit} reports per batch, got {len(parsed['reports'])}; split "
-                            f"the batch", errors=[{"path": "reports", "message": f"more than {limit} items"}])
-    body = read_body(ReportBatchIn if batch else ReportIn)
+    body, batch = _validated(current_app.config["MAX_BATCH"])
     reports, channels = (body.reports, body.channels) if batch else ([body], None)
     engine = current_app.extensions["occfuse.engine"]
     cfg = current_app.config
@@ -72,6 +66,36 @@ def create():
     items = ",".join(f'{{"seq":{s},"status":"{st}"}}' for s, st in results)  # ints and two fixed words
     body = f'{{"created":{created},"duplicates":{len(results) - created},"results":[{items}]}}'
     return Response(body, status=status_code, mimetype="application/json")
+
+
+def _validated(limit: int) -> tuple[ReportIn | ReportBatchIn, bool]:
+    """The body as a report or a batch of at most `limit` reports; (body, is a batch).
+
+    A valid body is validated once, as what it most likely is (a batch holds the key "reports"). Anything else
+    (an invalid body, or a wrong guess) takes the exact path: parse, tell a batch by its top-level "reports",
+    count, then validate as that, so the answer says what is wrong and where. Parsing first there also lets a
+    huge batch be refused without validating (or listing) each item.
+    """
+    raw = raw_body()
+    guess = b'"reports"' in raw
+    try:
+        body = (ReportBatchIn if guess else ReportIn).model_validate_json(raw)
+    except ValidationError:
+        parsed = read_body()
+        batch = isinstance(parsed, dict) and "reports" in parsed
+        if batch and isinstance(parsed["reports"], list):
+            _check_count(len(parsed["reports"]), limit)
+        return read_body(ReportBatchIn if batch else ReportIn), batch
+    # Valid as the guess means it is that: each model forbids the other's top-level fields.
+    if guess:
+        _check_count(len(body.reports), limit)
+    return body, guess
+
+
+def _check_count(n: int, limit: int) -> None:
+    if n > limit:
+        raise Unprocessable(f"reports: at most {limit} reports per batch, got {n}; split the batch",
+                            errors=[{"path": "reports", "message": f"more than {limit} items"}])
 
 
 def _read_plan() -> PlanIndex:

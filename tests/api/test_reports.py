@@ -105,7 +105,19 @@ def test_batch_over_the_configured_size_is_refused(app, net):
     net.register("kit-1")
     r = net.post("kit-1", {"reports": [net.report("kit-1", {"ch0": -96.0}) for _ in range(3)]})
     assert r.status_code == 422 and r.json["errors"][0]["path"] == "reports"
+    assert "at most 2 reports per batch, got 3" in r.json["detail"]
+    # the same over-size batch with invalid items: refused for its size, before any item is looked at
+    r = net.post("kit-1", {"reports": [{"seq": "x"}] * 3})
+    assert r.status_code == 422 and r.json["errors"] == [{"path": "reports", "message": "more than 2 items"}]
     assert stored(app) == 0
+
+
+def test_single_report_that_mentions_reports_is_still_a_single_report(net):
+    """The route first validates a body holding the text "reports" as a batch; a single report naming a node
+    "reports" fails that guess and must still be taken as the single report it is."""
+    net.register("reports")
+    r = net.post("reports", {**net.report("reports", {"ch0": -96.0}), "node": "reports"})
+    assert r.status_code == 201 and r.json == {"seq": 1, "status": "created"}
 
 
 def test_report_before_any_plan_is_409(client, admin):

@@ -27,7 +27,7 @@ from .errors import Conflict, Forbidden, Unprocessable
 from .models import pack
 from .plan import PlanIndex
 
-__all__ = ["fingerprint", "prepare_reports", "NodeRef", "same_content"]
+__all__ = ["fingerprint", "prepare_reports", "NodeRef", "same_content", "utc_text"]
 
 
 class NodeRef(NamedTuple):
@@ -45,7 +45,16 @@ def fingerprint(seq: int, measured_at: datetime, n_samples: int, powers: bytes, 
     stored-content fingerprint (an earlier hash of the JSON) are compared column by column instead
     (:func:`same_content`), so a retry is recognised either way.
     """
-    h = hashlib.sha256(b"%d|%s|%d|" % (seq, measured_at.astimezone(timezone.utc).isoformat().encode(), n_samples))
+    return _digest(seq, utc_text(measured_at), n_samples, powers, noise)
+
+
+def utc_text(at: datetime) -> str:
+    """`at` in UTC as ``datetime.isoformat`` writes it (``...+00:00``; microseconds only when non-zero)."""
+    return at.astimezone(timezone.utc).isoformat()
+
+
+def _digest(seq: int, utc: str, n_samples: int, powers: bytes, noise: bytes | None) -> str:
+    h = hashlib.sha256(b"%d|%s|%d|" % (seq, utc.encode(), n_samples))
     h.update(powers)
     h.update(b"|" + noise if noise is not None else b"|-")
     return h.hexdigest()
@@ -75,7 +84,8 @@ def same_content(stored: dict, row: dict, stored_ids: tuple[str, ...] | None, id
 def prepare_reports(node, reports: list[ReportIn], plan: PlanIndex, *, channels: list[str] | None = None,
                     prefix: str, now: datetime, max_skew_s: float, max_measurements: int) -> dict[int, dict]:
     """Check `reports` against `plan`; return ``{seq: row}`` (the columns of a ``report`` row, in request
-    order, one per distinct seq) or raise with every error.
+    order, one per distinct seq; and ``measured_utc``, the time as :func:`utc_text` gives it, computed once
+    for the fingerprint and the store) or raise with every error.
 
     `channels` is a batch's shared channel list for reports in the compact form without their own. `prefix`
     is the field path of the first report (``""`` for a single report, ``"reports"`` for a batch), used to say
@@ -103,16 +113,16 @@ def prepare_reports(node, reports: list[ReportIn], plan: PlanIndex, *, channels:
             if len(rep.powers_dbm) > max_measurements:
                 errors.append({"path": f"{at}powers_dbm", "message": f"at most {max_measurements} measurements "
                                f"per report, got {len(rep.powers_dbm)}"})
-            ids = rep.channels if rep.channels is not None else channels
-            if ids is None:
+            if rep.channels is None and channels is None:
                 errors.append({"path": f"{at}channels", "message": "`powers_dbm` needs `channels`: the channel "
                                "ids its values are for, in that order"})
                 continue
-            groups.setdefault(tuple(ids), []).append(i)
+            # None stands for the batch's shared list (most reports): no per-report tuple of its ids
+            groups.setdefault(tuple(rep.channels) if rep.channels is not None else None, []).append(i)
 
-    for ids, members in groups.items():
-        own = reports[members[0]].channels is not None
-        where = f"{prefix}[{members[0]}].channels" if own and prefix else "channels"
+    for key, members in groups.items():
+        ids = key if key is not None else tuple(channels)
+        where = f"{prefix}[{members[0]}].channels" if key is not None and prefix else "channels"
         positions = _positions(ids, plan, where, errors)
         if positions is not None:
             for i, blobs in zip(members, _pack_compact([reports[i] for i in members], positions,
@@ -125,7 +135,8 @@ def prepare_reports(node, reports: list[ReportIn], plan: PlanIndex, *, channels:
         raise Unprocessable(f"nothing was stored: {detail}" + (" ..." if len(errors) > 5 else ""), errors=errors)
     for i, rep in enumerate(reports):
         powers, noise = packed[i]
-        digest = fingerprint(rep.seq, rep.measured_at, rep.n_samples, powers, noise)
+        utc = utc_text(rep.measured_at)
+        digest = _digest(rep.seq, utc, rep.n_samples, powers, noise)
         if rep.seq in rows:
             if rows[rep.seq]["content_hash"] != digest:
                 at = f"{prefix}[{i}]." if prefix else ""
@@ -134,7 +145,7 @@ def prepare_reports(node, reports: list[ReportIn], plan: PlanIndex, *, channels:
             continue
         rows[rep.seq] = {"node_id": node.id, "seq": rep.seq, "measured_at": rep.measured_at, "received_at": now,
                          "n_samples": rep.n_samples, "plan_revision": plan.revision, "powers": powers,
-                         "noise": noise, "content_hash": digest}
+                         "noise": noise, "content_hash": digest, "measured_utc": utc}
     return rows
 
 

@@ -80,6 +80,13 @@ def _sqlite_time(value: datetime) -> str:
     return value.astimezone(timezone.utc).replace(tzinfo=None).isoformat(" ", "microseconds")
 
 
+def _sqlite_time_of(utc: str) -> str:
+    """:func:`_sqlite_time` from the time's :func:`fusion.ingest.utc_text`
+    (``YYYY-MM-DDTHH:MM:SS[.ffffff]+00:00``), which ingest has already computed for the fingerprint: string
+    slices instead of a second conversion."""
+    return f"{utc[:10]} {utc[11:26]}" if len(utc) == 32 else f"{utc[:10]} {utc[11:19]}.000000"
+
+
 _DIALECTS: dict[str, _Dialect] = {}
 
 
@@ -117,8 +124,10 @@ def store_reports(engine: Engine, rows: dict[int, dict], *, plan: PlanIndex, tok
         cur.execute(d.confirm, (received, node_id, token_hash))
         if cur.rowcount != 1:
             raise StaleNode()
-        params = [(r["node_id"], r["seq"], d.bind_time(r["measured_at"]), received, r["n_samples"],
-                   r["plan_revision"], r["powers"], r["noise"], r["content_hash"]) for r in rows.values()]
+        times = ([_sqlite_time_of(r["measured_utc"]) for r in rows.values()] if d.name == "sqlite"
+                 else [d.bind_time(r["measured_at"]) for r in rows.values()])
+        params = [(r["node_id"], r["seq"], at, received, r["n_samples"], r["plan_revision"], r["powers"],
+                   r["noise"], r["content_hash"]) for r, at in zip(rows.values(), times)]
         created: set[int] = set()
         for i in range(0, len(params), _CHUNK):
             chunk = params[i:i + _CHUNK]

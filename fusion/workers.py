@@ -32,6 +32,12 @@ KEEPALIVE_REQUESTS = 100
 KEEPALIVE_MAX_S = 1.0
 _BORN: "weakref.WeakKeyDictionary" = weakref.WeakKeyDictionary()  # connection socket -> monotonic time opened
 _BORN_LOCK = threading.Lock()
+# How long a gthread worker thread waits for a new connection's first bytes before handing the connection back to
+# the worker's poller. gunicorn (24 and later) waits 5 s, holding the thread meanwhile: with 4 threads per worker,
+# 8 connections that open and send nothing stalled `serve --workers 2` for 5 s per round (measured; a test in
+# tests/test_workers.py). A client that connects sends at once, so a short wait costs nothing; a silent
+# connection then waits in the poller without a thread, like a kept-alive one.
+FIRST_BYTES_WAIT_S = 0.1
 
 
 def options(host: str, port: int, workers: int, threads: int, worker_class: str = "gthread") -> dict:
@@ -74,8 +80,26 @@ def _post_worker_init(worker) -> None:
     from .scheduler import FusionScheduler
     from .server import tune_gc
 
+    _shorten_first_bytes_wait(worker)
+
     tune_gc()  # the app is built: keep its objects out of the collector's scans (fusion.server.tune_gc)
     _SCHEDULER["s"] = FusionScheduler(worker.wsgi).start()
+
+
+def _shorten_first_bytes_wait(worker) -> None:
+    """Set gunicorn's gthread wait for a new connection's first bytes to FIRST_BYTES_WAIT_S (in this worker
+    process; the module constant is read on every new connection)."""
+    if worker.cfg.worker_class_str != "gthread":
+        return
+    import gunicorn
+    from gunicorn.workers import gthread
+
+    if not hasattr(gthread, "DEFAULT_WORKER_DATA_TIMEOUT"):
+        # gunicorn before 24 waited in the poller, not in a thread; a later one may have renamed it
+        log.warning("gunicorn %s has no gthread DEFAULT_WORKER_DATA_TIMEOUT; connections that send nothing may "
+                    "hold worker threads", gunicorn.__version__)
+        return
+    gthread.DEFAULT_WORKER_DATA_TIMEOUT = FIRST_BYTES_WAIT_S
 
 
 def _worker_exit(server, worker) -> None:

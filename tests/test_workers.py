@@ -277,3 +277,33 @@ def test_sync_worker_class_serves_reports_and_runs_epochs(tmp_path):
         out.wait_for(lambda l: (e := _epoch_pid(l)) and e[1] == leader, 60)
         proc.send_signal(signal.SIGTERM)
         assert proc.wait(timeout=60) == 0
+
+
+def test_connections_that_send_nothing_do_not_hold_the_gthread_workers(tmp_path):
+    """gunicorn's gthread worker waits for a new connection's first bytes in one of its threads, 5 s by default;
+    with `--threads 4` and 2 workers, 8 silent connections stalled every request for 5 s per round (measured, 12
+    silent connections: 10 s). fusion.workers.FIRST_BYTES_WAIT_S hands a silent connection back to the poller
+    after 0.1 s. A request on a fresh connection is answered while 12 silent ones are open (a 3 s client timeout:
+    the stall this guards against is at least 5 s; a healthy answer takes milliseconds), and a connection that
+    stays silent past the wait is still served when it speaks."""
+    import socket
+
+    from fusion.db import upgrade
+
+    url = f"sqlite:///{tmp_path / 'silent.db'}"
+    upgrade(url)
+    with _serve(url) as (proc, out):
+        base = _serving_url(out)
+        host, port = base.removeprefix("http://").split(":")
+        silent = [socket.create_connection((host, int(port)), timeout=10) for _ in range(12)]
+        try:
+            time.sleep(0.5)  # every silent connection accepted and waiting
+            for _ in range(3):
+                assert httpx.get(f"{base}/healthz", timeout=3).status_code in (200, 503)
+            late = silent.pop()  # silent past the wait: now in the poller, not in a thread
+            late.sendall(f"GET /healthz HTTP/1.1\r\nHost: {host}\r\nConnection: close\r\n\r\n".encode())
+            assert late.recv(64).startswith(b"HTTP/1.1 ")
+            late.close()
+        finally:
+            for s in silent:
+                s.close()

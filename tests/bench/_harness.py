@@ -73,10 +73,10 @@ class Server:
     else gunicorn started here on the app factory (WORKER_CLASS). `how` says which ran."""
 
     def __init__(self, url: str, *, workers: int = 2, port: int = 18_473, scheduler: bool = False,
-                 worker_class: str | None = None):
+                 worker_class: str | None = None, interval_s: float = 5.0):
         self.base = f"127.0.0.1:{port}"
         env = {**os.environ, **ENV, "OCCFUSE_DATABASE_URL": url, "OCCFUSE_ADMIN_TOKEN": ADMIN,
-               "OCCFUSE_CONFIG": "", "OCCFUSE_LOG_LEVEL": "WARNING", "OCCFUSE_INTERVAL_S": "5"}
+               "OCCFUSE_CONFIG": "", "OCCFUSE_LOG_LEVEL": "WARNING", "OCCFUSE_INTERVAL_S": str(interval_s)}
         if _serve_has_workers():
             cmd = [sys.executable, "-m", "fusion.cli", "serve", "--host", "127.0.0.1", "--port", str(port),
                    "--workers", str(workers)]
@@ -141,7 +141,8 @@ class Server:
 def post_loop(args) -> tuple[int, int, float, dict]:
     """One client process: POST pre-encoded bodies until `seconds` pass or the bodies run out, over one
     keep-alive connection per token in turn (each token a node, as a site's nodes each hold their own
-    connection). Returns (requests ok, reports ok, elapsed s, {status: count} of the others).
+    connection). Returns (requests ok, reports ok, elapsed s, {status: count} of the others, and
+    "no answer, re-sent": requests the server dropped without an answer, re-sent once).
 
     Requests are written as ready-made bytes on a plain socket and responses read by Content-Length (a
     minimal HTTP/1.1 client): http.client costs ~0.5 ms of CPU per request, which on two shared cores is
@@ -152,7 +153,9 @@ def post_loop(args) -> tuple[int, int, float, dict]:
     host, port = base.rsplit(":", 1)
     heads = [(f"POST /api/v1/reports HTTP/1.1\r\nHost: {base}\r\nAuthorization: Bearer {token}\r\n"
               f"Content-Type: application/json\r\n").encode() for token in tokens]
-    conns = [_Conn(host, int(port)) for _ in tokens]
+    # Each connection is opened right before its first request, as a client does; opened all at once ahead of
+    # use, the idle ones held gthread worker threads (see fusion/workers.py, FIRST_BYTES_WAIT_S).
+    conns: list[_Conn | None] = [None] * len(tokens)
     ok = reports = 0
     other: dict[int, int] = {}
     start = time.perf_counter()
@@ -160,8 +163,21 @@ def post_loop(args) -> tuple[int, int, float, dict]:
         if time.perf_counter() - start > seconds:
             break
         k = b % len(conns)  # body b goes to connection (and node) b mod n: one request in flight at a time
-        conns[k].sock.sendall(heads[k] + b"Content-Length: %d\r\n\r\n" % len(body) + body)
-        status, close = conns[k].read_response()
+        request = heads[k] + b"Content-Length: %d\r\n\r\n" % len(body) + body
+        if conns[k] is None:
+            conns[k] = _Conn(host, int(port))
+        try:
+            conns[k].sock.sendall(request)
+            status, close = conns[k].read_response()
+        except (ConnectionError, TimeoutError):
+            # The server closed a keep-alive connection without an answer (seen once here, gthread workers with a
+            # profiler attached; gunicorn issue #2676 reports the same): re-send on a new connection, as the
+            # node agent does. The same seq is stored once (a re-sent stored report is a duplicate), so it is safe.
+            other["no answer, re-sent"] = other.get("no answer, re-sent", 0) + 1
+            conns[k].sock.close()
+            conns[k] = _Conn(host, int(port))
+            conns[k].sock.sendall(request)
+            status, close = conns[k].read_response()
         if status in (200, 201):
             ok += 1
             reports += per_body
@@ -169,10 +185,11 @@ def post_loop(args) -> tuple[int, int, float, dict]:
             other[status] = other.get(status, 0) + 1
         if close:
             conns[k].sock.close()
-            conns[k] = _Conn(host, int(port))
+            conns[k] = None
     elapsed = time.perf_counter() - start
     for conn in conns:
-        conn.sock.close()
+        if conn is not None:
+            conn.sock.close()
     return ok, reports, elapsed, other
 
 

@@ -174,9 +174,17 @@ def _pack_objects(rep: ReportIn, plan: PlanIndex, at: str, errors: list) -> tupl
     return pack(powers), (pack(noise) if any_noise else None)
 
 
+_POSITIONS: dict[tuple, np.ndarray] = {}  # (plan revision, created_at, channel ids) -> their plan positions
+_POSITIONS_MAX = 256  # distinct channel lists remembered per process (a node sends the same list each time)
+
+
 def _positions(ids: tuple[str, ...], plan: PlanIndex, where: str, errors: list) -> np.ndarray | None:
     """Plan positions of a compact report's channel list, or None (errors appended) if any is unknown or
-    repeated."""
+    repeated. Valid lists are remembered per plan: resolving 64 ids one by one was ~9 % of a single report."""
+    key = (plan.revision, plan.created_at, ids)
+    known = _POSITIONS.get(key)
+    if known is not None:
+        return known
     out = []
     seen: set[str] = set()
     ok = True
@@ -190,7 +198,14 @@ def _positions(ids: tuple[str, ...], plan: PlanIndex, where: str, errors: list) 
             ok = False
         seen.add(channel)
         out.append(pos)
-    return np.array(out, dtype=np.intp) if ok else None
+    if not ok:
+        return None
+    positions = np.array(out, dtype=np.intp)
+    positions.flags.writeable = False  # shared by later requests
+    if len(_POSITIONS) >= _POSITIONS_MAX:
+        _POSITIONS.clear()  # many distinct lists (or plans): start over rather than track use
+    _POSITIONS[key] = positions
+    return positions
 
 
 def _pack_compact(reports: list[ReportIn], positions: np.ndarray, n_channels: int):

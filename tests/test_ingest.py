@@ -6,10 +6,12 @@ import json
 from datetime import datetime, timedelta, timezone
 
 import numpy as np
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from fusion.api.schemas import ReportBatchIn, ReportIn
+from fusion.errors import Unprocessable
 from fusion.ingest import NodeRef, fingerprint, prepare_reports, same_content
 from fusion.plan import PlanIndex
 
@@ -95,3 +97,23 @@ class TestSameContent:
         # a channel measured in one and not the other is other content
         extra = self._row(2, [-70.0, -80.0, -90.0, np.nan], [-100.0, -100.0, -100.0, np.nan])
         assert not same_content(old, extra, ("a", "b", "c"), ("new", "b", "a", "c"))
+
+
+def test_remembered_channel_positions_follow_the_plan():
+    """Positions of a channel list are remembered per plan revision: the same list sent after a plan that
+    reorders the channels lands on the new positions, and an invalid list is never remembered."""
+    body = {"seq": 1, "measured_at": NOW.isoformat(), "n_samples": 10, "channels": ["c0", "c5"],
+            "powers_dbm": [-90.0, -80.0]}
+    rep = ReportIn.model_validate_json(json.dumps(body))
+    reordered = list(reversed(IDS))
+    plan2 = PlanIndex(2, NOW, {c: j for j, c in enumerate(reordered)},
+                      tuple((c, 4.7e8 + 8e6 * j, 6e6) for j, c in enumerate(reordered)))
+    for plan, order in ((PLAN, IDS), (plan2, reordered), (PLAN, IDS)):
+        powers = np.frombuffer(prepare_reports(NODE, [rep], plan, prefix="", **CHECK)[1]["powers"], "<f4")
+        assert powers[order.index("c0")] == -90.0 and powers[order.index("c5")] == -80.0
+        assert np.isnan(powers).sum() == len(IDS) - 2
+    bad = ReportIn.model_validate_json(json.dumps({**body, "channels": ["c0", "nope"]}))
+    for _ in range(2):  # refused both times, with the same path
+        with pytest.raises(Unprocessable) as refused:
+            prepare_reports(NODE, [bad], PLAN, prefix="", **CHECK)
+        assert refused.value.errors[0]["path"] == "channels[1]"

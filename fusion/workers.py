@@ -36,7 +36,8 @@ _BORN_LOCK = threading.Lock()
 # the worker's poller. gunicorn (24 and later) waits 5 s, holding the thread meanwhile: with 4 threads per worker,
 # 8 connections that open and send nothing stalled `serve --workers 2` for 5 s per round (measured; a test in
 # tests/test_workers.py). A client that connects sends at once, so a short wait costs nothing; a silent
-# connection then waits in the poller without a thread, like a kept-alive one.
+# connection then waits in the poller without a thread, like a kept-alive one. (gunicorn also bounds by it the
+# drain of a body the app did not read, e.g. after a 401: a body still arriving then closes the connection.)
 FIRST_BYTES_WAIT_S = 0.1
 
 

@@ -326,9 +326,7 @@ class PreparedEpoch:
     revision: int
     rule: str
     params: dict
-    x: EpochInputs
-    fused: EpochFusion
-    model: ReliabilityModel | None
+    n_reports: int  # fresh reports fused
     rel_rows: dict[int, tuple[str | None, bool]]  # node id -> (pin, pre-0003 JSON state) as read
     tracker_state: dict
     reliability: tuple[list[dict], dict, bytes] | None  # node_reliability rows, fusion_state value and blob
@@ -383,7 +381,7 @@ def prepare_epoch(session: Session, now: datetime, config: Mapping[str, Any]) ->
                   "rule": fs.rule, "statistic": None if not np.isfinite(stat[j]) else float(stat[j])}
                  for j, cid in enumerate(ids)]
     tracker_state = {"revision": plan.revision, "state": _json_arrays(tracker.get_state())}
-    return PreparedEpoch(now, started, plan.revision, fs.rule, params, x, fused, model, rel_rows, tracker_state,
+    return PreparedEpoch(now, started, plan.revision, fs.rule, params, x.n_reports, rel_rows, tracker_state,
                          reliability, decisions, basis)
 
 
@@ -399,7 +397,7 @@ def write_epoch(session: Session, prep: PreparedEpoch) -> Epoch:
         _write_reliability(session, values, prep.rel_rows)
         _save_state(session, "reliability", state, blob=blob)
     epoch = Epoch(started_at=prep.now, duration_s=0.0, plan_revision=prep.revision, rule=prep.rule,
-                  params=prep.params, n_reports=prep.x.n_reports)
+                  params=prep.params, n_reports=prep.n_reports)
     session.add(epoch)
     session.flush()
     session.execute(insert(Decision), [d | {"epoch_id": epoch.id} for d in prep.decisions])

@@ -114,8 +114,14 @@ def prepare_reports(node, reports: list[ReportIn], plan: PlanIndex, *, channels:
                 errors.append({"path": f"{at}powers_dbm", "message": f"at most {max_measurements} measurements "
                                f"per report, got {len(rep.powers_dbm)}"})
             if rep.channels is None and channels is None:
-                errors.append({"path": f"{at}channels", "message": "`powers_dbm` needs `channels`: the channel "
-                               "ids its values are for, in that order"})
+                where = ", in the report or once beside `reports`" if prefix else ""
+                errors.append({"path": f"{at}channels", "message": "`powers_dbm` needs `channels`: the channel ids "
+                               f"its values are for, in that order{where}"})
+                continue
+            # A report's own list is checked against its values in schemas.py; the batch's list is checked here.
+            if rep.channels is None and len(rep.powers_dbm) != len(channels):
+                errors.append({"path": f"{at}powers_dbm", "message": f"{len(rep.powers_dbm)} values for the batch's "
+                               f"{len(channels)} `channels`; give one value (or null) per channel"})
                 continue
             # None stands for the batch's shared list (most reports): no per-report tuple of its ids
             groups.setdefault(tuple(rep.channels) if rep.channels is not None else None, []).append(i)

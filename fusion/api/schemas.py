@@ -153,23 +153,13 @@ class ReportIn(_In):
 
 
 class ReportBatchIn(_In):
+    """Reports of one node. Whether each `powers_dbm` report has a channel list of the right length (its own,
+    or this one) is checked in fusion/ingest.py, which names the offending report's field in the error."""
+
     channels: list[Annotated[str, Field(min_length=1, max_length=64)]] | None = Field(
         default=None, min_length=1, max_length=4096,
         description="Channel ids that every `powers_dbm` report without its own `channels` follows.")
     reports: list[ReportIn] = Field(min_length=1)
-
-    @model_validator(mode="after")
-    def _channels_known(self):
-        for i, rep in enumerate(self.reports):
-            if rep.powers_dbm is None or rep.channels is not None:
-                continue
-            if self.channels is None:
-                raise ValueError(f"reports[{i}] gives `powers_dbm` without `channels`; give `channels` in the "
-                                 f"report or once beside `reports`")
-            if len(self.channels) != len(rep.powers_dbm):
-                raise ValueError(f"reports[{i}].powers_dbm has {len(rep.powers_dbm)} values for the batch's "
-                                 f"{len(self.channels)} `channels`; give one value (or null) per channel")
-        return self
 
 
 class ReportAck(_Out):

@@ -134,8 +134,8 @@ def test_invalid_compact_reports_are_422_with_the_path_and_store_nothing(app, ne
 
 @pytest.mark.parametrize("batch,path", [
     ({"channels": ["ch0", "nope"]}, "channels[1]"),
-    ({}, "(body)"),  # no batch-level list and none in the report
-    ({"channels": ["ch0"]}, "(body)"),  # the batch's list is one short for the report's values
+    ({}, "reports[1].channels"),  # no batch-level list and none in the report
+    ({"channels": ["ch0"]}, "reports[1].powers_dbm"),  # the batch's list is one short for the report's values
 ])
 def test_invalid_batch_channel_lists_are_422(app, net, batch, path):
     net.register("kit-1")
@@ -144,6 +144,19 @@ def test_invalid_batch_channel_lists_are_422(app, net, batch, path):
     r = net.post("kit-1", {**batch, "reports": [good, packed]})
     assert r.status_code == 422, r.json
     assert path in [e["path"] for e in r.json["errors"]], r.json["errors"]
+    assert rows(app) == []
+
+
+def test_every_report_without_a_usable_channel_list_is_named(app, net):
+    """Each offending report is listed with its own field, not only the first, and nothing is stored."""
+    net.register("kit-1")
+    short = compact(net, "kit-1", {"ch0": -90.0}, channels=False)  # 1 value for the batch's 2 channels
+    fits = compact(net, "kit-1", {"ch0": -90.0, "ch1": -91.0}, channels=False)
+    reports = [{**short, "seq": 11}, {**fits, "seq": 12}, {**short, "seq": 13}]
+    r = net.post("kit-1", {"channels": ["ch0", "ch1"], "reports": reports})
+    assert r.status_code == 422, r.json
+    assert [e["path"] for e in r.json["errors"]] == ["reports[0].powers_dbm", "reports[2].powers_dbm"]
+    assert "1 values for the batch's 2 `channels`" in r.json["errors"][0]["message"]
     assert rows(app) == []
 
 

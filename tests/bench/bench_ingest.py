@@ -11,14 +11,16 @@ Each HTTP run is followed at once by its raw run (same batch size), and the 64-c
 between two figures taken at the same moment. Medians are printed, with the range of the paired ratios.
 
     python tests/bench/bench_ingest.py [--seconds 4] [--clients 3] [--conns 4] [--repeat 3] [--quick]
-                                       [--worker-class gthread,sync] [--batch 100]
+                                       [--worker-class gthread,sync] [--batch 100] [--floor]
 """
 
 from __future__ import annotations
 
 import argparse
 import hashlib
+import socket
 import sqlite3
+import subprocess
 import sys
 import tempfile
 import time
@@ -79,6 +81,45 @@ def http_rate(server, tokens, ids, *, batch: int, seconds: float, clients: int, 
     return {"reports_s": reports / busy, "requests": sum(r[0] for r in results), "others": others, "wall": wall,
             "cpu_ms_per_report": 1e3 * cpu / max(reports, 1),
             "split": [round(100 * u / cpu) if cpu else 0 for u in used[:2]]}  # the two busiest processes, %
+
+
+class BareServer(Server):
+    """gunicorn, 2 workers of `worker_class` (4 threads for gthread, keep-alive 5 s as served), on bare_wsgi.py:
+    what reading the same requests and answering them costs without the service."""
+
+    def __init__(self, *, port: int, worker_class: str):
+        self.base = f"127.0.0.1:{port}"
+        self.how = f"gunicorn -w 2 -k {worker_class} on tests/bench/bare_wsgi.py (reads the body, answers)"
+        cmd = [sys.executable, "-m", "gunicorn", "-w", "2", "-k", worker_class, "--threads", "4", "--keep-alive", "5",
+               "-b", self.base, "--log-level", "warning", "--chdir", str(Path(__file__).resolve().parent),
+               "bare_wsgi:app"]
+        self.proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, start_new_session=True)
+        deadline = time.monotonic() + 30
+        while time.monotonic() < deadline:
+            try:
+                socket.create_connection(("127.0.0.1", port), timeout=1).close()
+                return
+            except OSError:
+                time.sleep(0.1)
+        self.stop()
+        raise RuntimeError("the bare gunicorn server did not start")
+
+
+def floor(*, worker_class: str, port: int, seconds: float, clients: int, conns: int, rng) -> str:
+    """Single and batched compact 64-channel requests against BareServer: requests/s and CPU per request."""
+    ids = [f"c{j:04d}" for j in range(64)]
+    tokens = [f"floor-{i}" for i in range(clients * conns)]  # the bare app reads no header
+    out = []
+    with BareServer(port=port, worker_class=worker_class) as server:
+        for batch in (1, BATCH):
+            x = http_rate(server, tokens, ids, batch=batch, compact=True, seconds=seconds, clients=clients,
+                          conns=conns, rng=rng)
+            if "skipped" in x:
+                continue
+            out.append(f"  {'single' if batch == 1 else f'batches of {batch}'}, compact: "
+                       f"{x['reports_s'] / batch:7.0f} requests/s, server CPU "
+                       f"{x['cpu_ms_per_report'] * batch:.3f} ms/request, split {x['split']} %")
+    return f"floor: {server.how}\n" + "\n".join(out)
 
 
 def machine_speed() -> float:
@@ -226,6 +267,8 @@ def main() -> int:
     ap.add_argument("--quick", action="store_true", help="only the 64-channel run")
     ap.add_argument("--batch", type=_batch_size, default=BATCH, metavar="2..500",
                     help="reports per batched request (the service's default MAX_BATCH is 500)")
+    ap.add_argument("--floor", action="store_true",
+                    help="also measure gunicorn alone (tests/bench/bare_wsgi.py) under the same load, per class")
     ap.add_argument("--worker-class", default="gthread,sync",
                     help="occfuse serve --worker-class values for the 64-channel run, comma-separated; the growth "
                          "runs use the first")
@@ -258,6 +301,8 @@ def main() -> int:
                       if key.startswith("single")
                       else f">= 0.5 x raw: {'met' if x['ratio'] >= 0.5 else 'NOT met'} ({x['ratio']:.2f})")
             print(f"target, {name}: {target}")
+        if args.floor:
+            print(floor(worker_class=worker_class, port=18_475 + k, **load))
     if args.quick:
         return 0
     print(f"growth with channels ({n_nodes} nodes; {classes[0]} workers):")

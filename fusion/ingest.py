@@ -104,6 +104,10 @@ def prepare_reports(node, reports: list[ReportIn], plan: PlanIndex, *, channels:
         if rep.measured_at > latest_allowed:
             errors.append({"path": f"{at}measured_at", "message": f"{rep.measured_at.isoformat()} is more than "
                            f"{max_skew_s:g} s in the future (server time {now.isoformat()}); check the node's clock"})
+        problem = _form_problem(rep)
+        if problem is not None:
+            errors.append({"path": f"{at}{problem[0]}", "message": problem[1]})
+            continue
         if rep.measurements is not None:
             if len(rep.measurements) > max_measurements:
                 errors.append({"path": f"{at}measurements", "message": f"at most {max_measurements} measurements "
@@ -118,7 +122,7 @@ def prepare_reports(node, reports: list[ReportIn], plan: PlanIndex, *, channels:
                 errors.append({"path": f"{at}channels", "message": "`powers_dbm` needs `channels`: the channel ids "
                                f"its values are for, in that order{where}"})
                 continue
-            # A report's own list is checked against its values in schemas.py; the batch's list is checked here.
+            # (a report's own list was checked against its values in _form_problem)
             if rep.channels is None and len(rep.powers_dbm) != len(channels):
                 errors.append({"path": f"{at}powers_dbm", "message": f"{len(rep.powers_dbm)} values for the batch's "
                                f"{len(channels)} `channels`; give one value (or null) per channel"})
@@ -153,6 +157,24 @@ def prepare_reports(node, reports: list[ReportIn], plan: PlanIndex, *, channels:
                          "n_samples": rep.n_samples, "plan_revision": plan.revision, "powers": powers,
                          "noise": noise, "content_hash": digest, "measured_utc": utc}
     return rows
+
+
+def _form_problem(rep: ReportIn) -> tuple[str, str] | None:
+    """(field, message) if `rep` does not give exactly one form, consistently; else None."""
+    if rep.measurements is not None:
+        if rep.powers_dbm is not None:
+            return "powers_dbm", "give either `measurements` or `powers_dbm` (with `channels`), not both"
+        if rep.channels is not None:
+            return "channels", "`channels` goes with `powers_dbm`; with `measurements` each names its channel"
+        return None
+    if rep.powers_dbm is None:
+        return "measurements", "give either `measurements` or `powers_dbm` (with `channels`)"
+    if rep.channels is not None and len(rep.channels) != len(rep.powers_dbm):
+        return "powers_dbm", (f"{len(rep.powers_dbm)} values for {len(rep.channels)} `channels`; give one value "
+                              f"(or null) per channel")
+    if all(p is None for p in rep.powers_dbm):
+        return "powers_dbm", "only nulls; a report must measure at least one channel"
+    return None
 
 
 def _pack_objects(rep: ReportIn, plan: PlanIndex, at: str, errors: list) -> tuple[bytes, bytes | None]:

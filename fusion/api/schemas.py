@@ -119,7 +119,8 @@ class MeasurementIn(_In):
 
 class ReportIn(_In):
     """One sweep, in one of two forms: `measurements` (one object per channel) or `powers_dbm` (one value per
-    channel, in the order of `channels`, given here or once for a whole batch)."""
+    channel, in the order of `channels`, given here or once for a whole batch). That exactly one form is given,
+    consistently, is checked in fusion/ingest.py, whose errors name the field (a model validator's could not)."""
 
     seq: int = Field(ge=0, le=2**63 - 1, description="Per-node sequence number; a retry re-sends the same seq.")
     measured_at: AwareDatetime = Field(description="RFC 3339 time of the measurement, with a UTC offset.")
@@ -136,20 +137,6 @@ class ReportIn(_In):
         default=None, min_length=1, max_length=4096,
         description="Mean power per complex sample (dBm) for each of `channels`, in that order; null = not "
                     "measured. The compact form of `measurements` for a whole sweep.")
-
-    @model_validator(mode="after")
-    def _one_form(self):
-        if (self.measurements is None) == (self.powers_dbm is None):
-            raise ValueError("give either `measurements` or `powers_dbm` (with `channels`), not both or neither")
-        if self.channels is not None:
-            if self.powers_dbm is None:
-                raise ValueError("`channels` goes with `powers_dbm`; with `measurements` each names its channel")
-            if len(self.channels) != len(self.powers_dbm):
-                raise ValueError(f"`powers_dbm` has {len(self.powers_dbm)} values for {len(self.channels)} "
-                                 f"`channels`; give one value (or null) per channel")
-        if self.powers_dbm is not None and all(p is None for p in self.powers_dbm):
-            raise ValueError("`powers_dbm` holds only nulls; a report must measure at least one channel")
-        return self
 
 
 class ReportBatchIn(_In):

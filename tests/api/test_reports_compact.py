@@ -107,12 +107,13 @@ def test_a_retry_across_a_plan_change_is_still_a_duplicate(app, net):
 
 
 BAD = [
-    ("both forms", lambda b: {**b, "measurements": [{"channel": "ch0", "power_dbm": -90.0}]}, "(body)"),
-    ("neither form", lambda b: {k: v for k, v in b.items() if k not in ("powers_dbm", "channels")}, "(body)"),
+    ("both forms", lambda b: {**b, "measurements": [{"channel": "ch0", "power_dbm": -90.0}]}, "powers_dbm"),
+    ("neither form", lambda b: {k: v for k, v in b.items() if k not in ("powers_dbm", "channels")},
+     "measurements"),
     ("channels without powers", lambda b: {**{k: v for k, v in b.items() if k != "powers_dbm"},
-                                           "measurements": [{"channel": "ch0", "power_dbm": -90.0}]}, "(body)"),
-    ("one value short", lambda b: {**b, "powers_dbm": b["powers_dbm"][:1]}, "(body)"),
-    ("only nulls", lambda b: {**b, "powers_dbm": [None, None]}, "(body)"),
+                                           "measurements": [{"channel": "ch0", "power_dbm": -90.0}]}, "channels"),
+    ("one value short", lambda b: {**b, "powers_dbm": b["powers_dbm"][:1]}, "powers_dbm"),
+    ("only nulls", lambda b: {**b, "powers_dbm": [None, None]}, "powers_dbm"),
     ("no channel list at all", lambda b: {k: v for k, v in b.items() if k != "channels"}, "channels"),
     ("unknown channel", lambda b: {**b, "channels": ["ch0", "ch9"]}, "channels[1]"),
     ("channel twice", lambda b: {**b, "channels": ["ch0", "ch0"]}, "channels[1]"),
@@ -144,6 +145,18 @@ def test_invalid_batch_channel_lists_are_422(app, net, batch, path):
     r = net.post("kit-1", {**batch, "reports": [good, packed]})
     assert r.status_code == 422, r.json
     assert path in [e["path"] for e in r.json["errors"]], r.json["errors"]
+    assert rows(app) == []
+
+
+def test_a_form_error_in_a_batch_names_the_report_and_its_field(app, net):
+    net.register("kit-1")
+    good = net.report("kit-1", {"ch0": -90.0})
+    both = {**compact(net, "kit-1", {"ch0": -90.0}), "measurements": [{"channel": "ch0", "power_dbm": -90.0}]}
+    nulls = {**compact(net, "kit-1", {"ch0": None, "ch1": None}), "seq": good["seq"] + 1}
+    r = net.post("kit-1", {"reports": [good, both, nulls]})
+    assert r.status_code == 422, r.json
+    assert [e["path"] for e in r.json["errors"]] == ["reports[1].powers_dbm", "reports[2].powers_dbm"]
+    assert "not both" in r.json["errors"][0]["message"] and "only nulls" in r.json["errors"][1]["message"]
     assert rows(app) == []
 
 

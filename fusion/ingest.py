@@ -104,7 +104,7 @@ def prepare_reports(node, reports: list[ReportIn], plan: PlanIndex, *, channels:
         if rep.measured_at > latest_allowed:
             errors.append({"path": f"{at}measured_at", "message": f"{rep.measured_at.isoformat()} is more than "
                            f"{max_skew_s:g} s in the future (server time {now.isoformat()}); check the node's clock"})
-        problem = _form_problem(rep)
+        problem = _form_problem(rep, channels, in_batch=bool(prefix))
         if problem is not None:
             errors.append({"path": f"{at}{problem[0]}", "message": problem[1]})
             continue
@@ -117,16 +117,6 @@ def prepare_reports(node, reports: list[ReportIn], plan: PlanIndex, *, channels:
             if len(rep.powers_dbm) > max_measurements:
                 errors.append({"path": f"{at}powers_dbm", "message": f"at most {max_measurements} measurements "
                                f"per report, got {len(rep.powers_dbm)}"})
-            if rep.channels is None and channels is None:
-                where = ", in the report or once beside `reports`" if prefix else ""
-                errors.append({"path": f"{at}channels", "message": "`powers_dbm` needs `channels`: the channel ids "
-                               f"its values are for, in that order{where}"})
-                continue
-            # (a report's own list was checked against its values in _form_problem)
-            if rep.channels is None and len(rep.powers_dbm) != len(channels):
-                errors.append({"path": f"{at}powers_dbm", "message": f"{len(rep.powers_dbm)} values for the batch's "
-                               f"{len(channels)} `channels`; give one value (or null) per channel"})
-                continue
             # None stands for the batch's shared list (most reports): no per-report tuple of its ids
             groups.setdefault(tuple(rep.channels) if rep.channels is not None else None, []).append(i)
 
@@ -159,8 +149,9 @@ def prepare_reports(node, reports: list[ReportIn], plan: PlanIndex, *, channels:
     return rows
 
 
-def _form_problem(rep: ReportIn) -> tuple[str, str] | None:
-    """(field, message) if `rep` does not give exactly one form, consistently; else None."""
+def _form_problem(rep: ReportIn, channels: list[str] | None, *, in_batch: bool) -> tuple[str, str] | None:
+    """(field, message) if `rep` does not give exactly one form, consistently (a `powers_dbm` report with one
+    value per id of its channel list: its own, else the batch's `channels`); else None."""
     if rep.measurements is not None:
         if rep.powers_dbm is not None:
             return "powers_dbm", "give either `measurements` or `powers_dbm` (with `channels`), not both"
@@ -169,8 +160,13 @@ def _form_problem(rep: ReportIn) -> tuple[str, str] | None:
         return None
     if rep.powers_dbm is None:
         return "measurements", "give either `measurements` or `powers_dbm` (with `channels`)"
-    if rep.channels is not None and len(rep.channels) != len(rep.powers_dbm):
-        return "powers_dbm", (f"{len(rep.powers_dbm)} values for {len(rep.channels)} `channels`; give one value "
+    listed = rep.channels if rep.channels is not None else channels
+    if listed is None:
+        where = ", in the report or once beside `reports`" if in_batch else ""
+        return "channels", f"`powers_dbm` needs `channels`: the channel ids its values are for, in that order{where}"
+    if len(listed) != len(rep.powers_dbm):
+        whose = "" if rep.channels is not None else "the batch's "
+        return "powers_dbm", (f"{len(rep.powers_dbm)} values for {whose}{len(listed)} `channels`; give one value "
                               f"(or null) per channel")
     if all(p is None for p in rep.powers_dbm):
         return "powers_dbm", "only nulls; a report must measure at least one channel"

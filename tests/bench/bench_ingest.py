@@ -252,9 +252,9 @@ def line(label, r) -> str:
 
 
 def _batch_size(text: str) -> int:
-    n = int(text)
-    if not 2 <= n <= 500:
-        raise argparse.ArgumentTypeError(f"{n} reports per batch: give 2 to 500 (the service's MAX_BATCH)")
+    n, limit = int(text), DEFAULTS["MAX_BATCH"]
+    if not 2 <= n <= limit:
+        raise argparse.ArgumentTypeError(f"{n} reports per batch: give 2 to {limit} (the service's MAX_BATCH)")
     return n
 
 
@@ -265,8 +265,8 @@ def main() -> int:
     ap.add_argument("--conns", type=int, default=4, help="keep-alive connections (nodes) per client process")
     ap.add_argument("--repeat", type=int, default=3, help="paired runs (HTTP, then raw) of each 64-channel form")
     ap.add_argument("--quick", action="store_true", help="only the 64-channel run")
-    ap.add_argument("--batch", type=_batch_size, default=BATCH, metavar="2..500",
-                    help="reports per batched request (the service's default MAX_BATCH is 500)")
+    ap.add_argument("--batch", type=_batch_size, default=BATCH, metavar=f"2..{DEFAULTS['MAX_BATCH']}",
+                    help="reports per batched request, up to the service's default MAX_BATCH")
     ap.add_argument("--floor", action="store_true",
                     help="also measure gunicorn alone (tests/bench/bare_wsgi.py) under the same load, per class")
     ap.add_argument("--worker-class", default="gthread,sync",

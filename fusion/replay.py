@@ -110,9 +110,10 @@ class RuleTally:
 
     ``versus_service[a][b]``: channel-epochs the service published as ``a`` and this rule as ``b``.  With a
     ground truth: ``per_channel[c]``: how often the rule published each state on channel ``c`` and how
-    often that differed from the service; ``scored`` channel-epochs, ``correct`` (state equals the truth at the decision, or within
-    the grace window before it), ``missed`` (said free while the channel was occupied throughout the grace
-    window), ``false_alarms`` (said occupied while it was free throughout), ``unknown``.
+    often that differed from the service; ``scored`` channel-epochs, ``correct`` (state equals the truth at
+    the decision, or within the grace window before it), ``missed`` (said free while the channel was
+    occupied throughout the grace window), ``false_alarms`` (said occupied while it was free throughout),
+    ``unknown``.
     """
 
     label: str
@@ -261,8 +262,9 @@ def summary_lines(result: ReplayResult) -> list[str]:
     for t, is_service in rows:
         label = f"service ({t.label})" if is_service else t.label
         vs = t.versus_service
-        line = (f"{label:<16} {t.decisions:>9} {'-' if is_service else t.decisions - t.agree:>7} "
-                f"{'-' if is_service else vs['free']['occupied']:>13} {'-' if is_service else vs['occupied']['free']:>13}")
+        differ = ("-", "-", "-") if is_service else (t.decisions - t.agree, vs["free"]["occupied"],
+                                                      vs["occupied"]["free"])
+        line = f"{label:<16} {t.decisions:>9} {differ[0]:>7} {differ[1]:>13} {differ[2]:>13}"
         if result.with_truth:
             acc = f"{t.correct / t.scored:.4f}" if t.scored else "-"
             line += f" {acc:>8} {t.missed:>7} {t.false_alarms:>12} {t.unknown:>7}"

@@ -66,7 +66,8 @@ def build_spec(reads_need_token: bool = False) -> dict:
                                                                        "404": _P}}},
         "/api/v1/nodes/{name}/token": {
             "post": {"summary": "Issue a new token for a node (the old one stops working)", "security": admin,
-                     "parameters": [name], "responses": {**ok(s.TokenOut), "401": _P, "403": _P, "404": _P, "503": _BUSY}}},
+                     "parameters": [name],
+                     "responses": {**ok(s.TokenOut), "401": _P, "403": _P, "404": _P, "503": _BUSY}}},
         "/api/v1/plan": {
             "get": {"summary": "The current band plan", "security": reader,
                     "responses": {**ok(s.PlanOut), **_READ_ERRORS}},

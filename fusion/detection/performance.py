@@ -86,7 +86,8 @@ def system_performance(rule, n_samples, snr, target_pf, *, k=None, trust=None,
     if rule in rules.HARD_RULES:
         p_loc = float(system.local_false_alarm(rule, np.array(n.size), target_pf, k))
         tau = energy.threshold(p_loc, n)
-        pd_true = energy.detection_awgn(tau, n, g) if signal == "deterministic" else energy.detection_gaussian(tau, n, g)
+        detect = energy.detection_awgn if signal == "deterministic" else energy.detection_gaussian
+        pd_true = detect(tau, n, g)
         pf_true = np.full(n.shape, p_loc)
         if rule == "chair_varshney":
             w = system.chair_varshney_weights(energy.detection_awgn(tau, n, gd), pf_true)

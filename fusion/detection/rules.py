@@ -222,8 +222,9 @@ def fuse(t, n_samples, *, rule, target_pf, k=None, snr=None, pd=None, pf=None, t
     if t.ndim != 2:
         raise ValueError(f"`t` must have shape (n_nodes, n_channels), was shape {t.shape}")
     mask = ~np.isnan(t)
-    if np.any(mask & ~((t >= 0) & np.isfinite(t))):
-        raise ValueError(f"`t` must be finite and >= 0 or NaN, was {t[mask & ~(t >= 0) | np.isinf(t)].flat[0].item()!r}")
+    bad = mask & ~((t >= 0) & np.isfinite(t))
+    if np.any(bad):
+        raise ValueError(f"`t` must be finite and >= 0 or NaN, was {t[bad].flat[0].item()!r}")
     shape = t.shape
     target_pf = float(target_pf)
     if not 0.0 < target_pf < 1.0:

@@ -225,8 +225,9 @@ class MarkovTracker:
         if p_obs.shape != (st["p_on"].size,):
             raise ValueError(f"`p_obs` must have shape ({st['p_on'].size},), was {p_obs.shape}")
         seen = ~np.isnan(p_obs)
-        if np.any(seen & ~((p_obs >= 0) & (p_obs <= 1))):
-            raise ValueError(f"`p_obs` must lie in [0, 1] or be NaN, was {p_obs[seen & ~((p_obs >= 0) & (p_obs <= 1))].flat[0].item()!r}")
+        bad = seen & ~((p_obs >= 0) & (p_obs <= 1))
+        if np.any(bad):
+            raise ValueError(f"`p_obs` must lie in [0, 1] or be NaN, was {p_obs[bad].flat[0].item()!r}")
         prior_pred = self.prior_
         used = prior_pred if prior_used is None else np.broadcast_to(np.asarray(prior_used, dtype=float), p_obs.shape)
         if np.any(~((used > 0) & (used < 1))):

@@ -59,7 +59,8 @@ def test_epoch_duration_decisions_and_database_gauges(app, client, net):
     before = scrape(client)
     FusionScheduler(app).tick()  # no lease: this test drives one epoch directly
     after = scrape(client)
-    assert value(after, "occfuse_epoch_duration_seconds_count") - value(before, "occfuse_epoch_duration_seconds_count") == 1
+    count = "occfuse_epoch_duration_seconds_count"
+    assert value(after, count) - value(before, count) == 1
     channels = client.get("/api/v1/channels").json["channels"]
     by_state = {s: sum(c["state"] == s for c in channels) for s in ("free", "occupied", "unknown")}
     for state, n in by_state.items():

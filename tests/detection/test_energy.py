@@ -168,7 +168,8 @@ class TestDetectionRayleigh:
         assert_allclose(energy.detection_rayleigh(tau, 1, 3.0), np.exp(-tau / 4.0), **EXACT)
         # Large N and non-integer N agree with the series path.
         tau = energy.threshold(0.1, 1000)
-        assert_allclose(energy.detection_rayleigh(tau, 1000, 0.1), energy.detection_nakagami(tau, 1000, 0.1, 1), rtol=1e-9)
+        assert_allclose(energy.detection_rayleigh(tau, 1000, 0.1), energy.detection_nakagami(tau, 1000, 0.1, 1),
+                        rtol=1e-9)
         assert_allclose(energy.detection_rayleigh(5.0, 4.5, 0.5), energy.detection_nakagami(5.0, 4.5, 0.5, 1), **EXACT)
         # Zero SNR: Pd = Pf.
         assert_allclose(energy.detection_rayleigh(7.0, 5, 0.0), energy.false_alarm(7.0, 5), **EXACT)
@@ -212,7 +213,8 @@ class TestDetectionNakagami:
             beta ** (m - 1) * special.eval_laguerre(m - 1, x)
             + (1 - beta) * sum(beta**i * special.eval_laguerre(i, x) for i in range(m - 1))
         )
-        tail = sum((lam / 2) ** i / special.factorial(i) * special.hyp1f1(m, i + 1, lam * (1 - beta) / 2) for i in range(1, u))
+        tail = sum((lam / 2) ** i / special.factorial(i) * special.hyp1f1(m, i + 1, lam * (1 - beta) / 2)
+                   for i in range(1, u))
         closed = a1 + beta**m * np.exp(-lam / 2) * tail
         assert_allclose(energy.detection_nakagami(lam / 2, u, gbar / u, m), closed, **EXACT)
 

@@ -222,7 +222,8 @@ class TestClippedLlrCumulants:
         # Unclipped: l = aT - b with T ~ Gamma(N, 1): cumulants aN - b, a^2 N, 2 a^3 N (exact).
         n, g = 50.0, 0.2
         a, b = g / (1 + g), n * np.log1p(g)
-        assert_allclose(system.clipped_llr_cumulants(n, g, 1.0, np.inf), [a * n - b, a * a * n, 2 * a**3 * n], rtol=1e-8)
+        assert_allclose(system.clipped_llr_cumulants(n, g, 1.0, np.inf), [a * n - b, a * a * n, 2 * a**3 * n],
+                        rtol=1e-8)
 
     def test_monte_carlo(self):
         # Clipped at ln 9, heavy clipping: cumulants of 4e5 seeded draws; tolerances are 5
@@ -309,7 +310,8 @@ class TestSystemPerformance:
         assert_allclose([egc.qd, egc.qf], [0.7763627411, 0.1], rtol=1e-8)
         assert_allclose(egc.threshold, 3 * 55.29808662, rtol=1e-9)
         # Gaussian signal, exact Moschopoulos: EGC 0.7725216602, LLR (gamma/(1+gamma)) 0.8344002922.
-        assert_allclose(performance.system_performance("egc", [50] * 3, g, 0.1, signal="gaussian").qd, 0.7725216602, rtol=1e-8)
+        egc_gaussian = performance.system_performance("egc", [50] * 3, g, 0.1, signal="gaussian")
+        assert_allclose(egc_gaussian.qd, 0.7725216602, rtol=1e-8)
         llr = performance.system_performance("llr", [50] * 3, g, 0.1, signal="gaussian")
         # The llr threshold is Pearson's approximation, so its Pd is at a slightly different Pf:
         # Pearson lands within 1e-3 of the target Pf (a plain Gaussian approximation is off by ~3e-3 here).

@@ -230,7 +230,8 @@ def test_a_scenario_channel_carries_its_falsifier_and_names_the_time_behaviours(
     assert setup.n_nodes == len(sc.nodes)
     for name, f in zip(setup.names, setup.falsify):
         assert (f is not None) == (kinds[name] == "falsify")
-    assert set(setup.description["evaluated_as_honest"]) == {n for n, k in kinds.items() if k not in ("honest", "falsify")}
+    evaluated_as_honest = {n for n, k in kinds.items() if k not in ("honest", "falsify")}
+    assert set(setup.description["evaluated_as_honest"]) == evaluated_as_honest
     rep = ev.evaluate(setup, ev.parse_rules("or,egc", setup.n_nodes), trials=500, seed=1)
     assert rep["setup"]["channel"] == setup.description["channel"]
 

@@ -59,7 +59,8 @@ class TestLinkBudget:
 class TestFastLaws:
     @pytest.mark.parametrize("signal", ["gaussian", "ofdm"])
     def test_fast_statistic_follows_its_exact_law(self, signal):
-        # Urkowitz (1967) and the Gaussian-signal law: Gaussian signal T ~ Gamma(N, 1 + snr); deterministic energy 2T ~ ncx2(2N, 2N snr).
+        # Urkowitz (1967) and the Gaussian-signal law: Gaussian signal T ~ Gamma(N, 1 + snr);
+        # deterministic energy 2T ~ ncx2(2N, 2N snr).
         n = 64
         net = SimNetwork(scenario(signal=signal, n_samples=n, eirp_dbm=-30.0), 10.0, seed=3)
         snr = 10 ** ((net.mean_rx_dbm[0, 1, 0] - net.nominal_noise_dbm[0, 1]) / 10)

@@ -164,10 +164,11 @@ class ReliabilityModel:
     confident decisions (Rawat et al. put the blind point at half the nodes flipping).
 
     With ``k`` votes of 1 among ``n`` labelled occupied observations the Pd posterior is
-    ``Beta(a + k, b + n - k)`` (agreement counting against the fused decisions, a hard-label step of
-    Dawid & Skene 1979); the mean is the Bayes predictive vote rate, so plugging it into the
-    Chair-Varshney weights [2]_ needs no further shrinkage.  Fusion errors bias these counts; the confidence bar and the
-    leave-one-out check bound that bias, and forgetting lets a wrong start wash out.
+    ``Beta(a + k, b + n - k)`` (agreement counting against the fused decisions, a hard-label
+    step of Dawid & Skene 1979); the mean is the Bayes predictive vote rate, so plugging it
+    into the Chair-Varshney weights [2]_ needs no further shrinkage.  Fusion errors bias these
+    counts; the confidence bar and the leave-one-out check bound that bias, and forgetting
+    lets a wrong start wash out.
     Under H0 the mean power over ``N`` samples is ``sigma^2 Gamma(N, 1) / N``, so each
     free-channel power is divided by that law's median before the medians are taken.
 
